@@ -1,0 +1,112 @@
+"""What a check is, and the context every check receives.
+
+A check is one module in ``lossguard/checks/`` defining ``CHECK = Check(...)``; the registry
+finds it by itself. ``run`` takes a :class:`Context` (the spec, the shared evaluator, the seed,
+the effort and cached standard cases) and returns a :class:`~lossguard.result.CheckResult`.
+Checks never print and never touch global state.
+"""
+
+from __future__ import annotations
+
+import zlib
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, random_stack, shape_menu, target_domain
+from ..evaluate import Evaluator
+from ..result import CheckResult
+from ..spec import LossSpec
+
+__all__ = ["Check", "Context", "always", "never", "only"]
+
+
+def always(spec: LossSpec) -> bool:
+    return True
+
+
+def never(spec: LossSpec) -> bool:
+    return False
+
+
+def only(*kinds: str, inputs: str | None = None) -> Callable[[LossSpec], str | None]:
+    """An ``applies`` rule: the check needs one of ``kinds`` (and these inputs, if given)."""
+
+    def rule(spec: LossSpec) -> str | None:
+        if spec.kind not in kinds:
+            return f"applies to kind {' or '.join(kinds)}, not {spec.kind}"
+        if inputs is not None and spec.inputs != inputs:
+            return f"applies to inputs={inputs}, not {spec.inputs}"
+        return None
+
+    return rule
+
+
+@dataclass(frozen=True)
+class Check:
+    """A named check.
+
+    Args:
+        name: the name users type after ``--skip``/``--expect`` (part of the contract).
+        summary: one line on what it catches.
+        run: ``run(ctx) -> CheckResult``.
+        applies: ``None`` when the check makes sense for the spec, else the reason it does not.
+        default: whether it runs without ``--expect`` (when it applies).
+        skip_hint: when turning it off is legitimate (shown with a failure).
+        order: position in the battery (cheap, foundational checks first).
+    """
+
+    name: str
+    summary: str
+    run: Callable[[Context], CheckResult]
+    applies: Callable[[LossSpec], str | None] = lambda spec: None
+    default: Callable[[LossSpec], bool] = always
+    skip_hint: str = ""
+    order: int = 50
+
+
+@dataclass
+class Context:
+    """What a check receives: the declaration, the shared evaluator, the seed and effort."""
+
+    spec: LossSpec
+    evaluator: Evaluator
+    seed: int = 0
+    effort: str = "default"
+    _stacks: dict[tuple[str, Cell], CaseStack] = field(default_factory=dict)
+
+    def rng(self, purpose: str) -> np.random.Generator:
+        """A generator seeded by (seed, purpose): each check draws its own, reproducibly."""
+        return np.random.default_rng([self.seed, zlib.crc32(purpose.encode())])
+
+    @property
+    def cells(self) -> list[Cell]:
+        return shape_menu(self.spec, self.effort)
+
+    @property
+    def domain(self) -> str:
+        return target_domain(self.spec)
+
+    def random_cases(self, cell: Cell) -> CaseStack:
+        """The battery's shared random cases for ``cell`` (drawn once per run)."""
+        key = ("random", cell)
+        if key not in self._stacks:
+            self._stacks[key] = random_stack(
+                self.spec, cell, self.rng(f"random {cell}"), cases_per_cell(self.effort), domain=self.domain
+            )
+        return self._stacks[key]
+
+    def ladder_cases(self, cell: Cell) -> CaseStack:
+        """The extreme-logit ladder for ``cell`` (drawn once per run)."""
+        key = ("ladder", cell)
+        if key not in self._stacks:
+            self._stacks[key] = ladder_stack(self.spec, cell, self.rng(f"ladder {cell}"), domain=self.domain)
+        return self._stacks[key]
+
+    def standard_cases(self, cell: Cell) -> CaseStack:
+        """Random and ladder cases of ``cell`` together."""
+        key = ("standard", cell)
+        if key not in self._stacks:
+            self._stacks[key] = concat([self.random_cases(cell), self.ladder_cases(cell)])
+        return self._stacks[key]

@@ -1,0 +1,111 @@
+"""Shared comparison: which cases broke an allowance, and the worst few as examples."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ..cases import CaseStack
+from ..result import Example
+from ..spec import LossSpec
+
+__all__ = ["Mismatch", "mismatch", "replay", "examples_from", "fmt"]
+
+
+def fmt(a: Any, digits: int = 6) -> str:
+    """Short text for a value or array in a message."""
+    arr = np.asarray(a)
+    if arr.size == 1:
+        return f"{float(arr.reshape(-1)[0]):.{digits}g}"
+    with np.printoptions(precision=digits, threshold=12, edgeitems=3, linewidth=120):
+        return np.array2string(arr, separator=", ")
+
+
+def replay(spec: LossSpec, z: np.ndarray, y: np.ndarray, dtype: str = "float64") -> str:
+    """A copy-pasteable call reproducing one case."""
+    params = "".join(f", {k}={v!r}" for k, v in spec.params.items())
+    ydt = "" if np.issubdtype(np.asarray(y).dtype, np.integer) else f", dtype='{dtype}'"
+    return (
+        f"loss(np.array({np.asarray(z).tolist()!r}, dtype='{dtype}'), "
+        f"np.array({np.asarray(y).tolist()!r}{ydt}){params})   # loss = {spec.name}"
+    )
+
+
+class Mismatch:
+    """Per-case comparison of ``got`` against ``expected`` with absolute allowance ``atol``.
+
+    A case fails when any element differs by more than its allowance, when ``got`` is not
+    finite where ``expected`` is, or when ``got`` is finite where ``expected`` is infinite.
+    Both infinite with the same sign, or both nan, agree.
+    """
+
+    def __init__(self, got: np.ndarray, expected: np.ndarray, atol: np.ndarray | float) -> None:
+        g = np.asarray(got, dtype=np.float64)
+        e = np.asarray(expected, dtype=np.float64)
+        a = np.broadcast_to(np.asarray(atol, dtype=np.float64), np.broadcast_shapes(g.shape, np.shape(atol)))
+        k = g.shape[0] if g.ndim else 1
+        with np.errstate(all="ignore"):
+            diff = np.abs(g - e)
+            same_special = (g == e) | (np.isnan(g) & np.isnan(e))
+            finite = np.isfinite(g) & np.isfinite(e)
+            bad = ~same_special & (~finite | (diff > a))
+            ratio = np.where(finite, diff / a, np.where(same_special, 0.0, np.inf))
+            rel = np.where(finite & (np.abs(e) > 0), diff / np.abs(e), np.where(finite, diff, np.inf))
+        self.got, self.expected, self.atol = g, e, a
+        self.bad_elements = bad
+        self.case_bad = bad.reshape(k, -1).any(axis=1)
+        self.case_ratio = ratio.reshape(k, -1).max(axis=1)
+        self.case_abs = np.where(finite, diff, np.where(same_special, 0.0, np.inf)).reshape(k, -1).max(axis=1)
+        self.case_rel = rel.reshape(k, -1).max(axis=1)
+
+    @property
+    def failed(self) -> int:
+        return int(self.case_bad.sum())
+
+    def order(self, only_failed: bool = True) -> np.ndarray:
+        """Case indices, worst first."""
+        idx = np.flatnonzero(self.case_bad) if only_failed else np.arange(self.case_bad.size)
+        return idx[np.argsort(-self.case_ratio[idx], kind="stable")]
+
+    def max_abs(self) -> float:
+        v = self.case_abs[np.isfinite(self.case_abs)]
+        return float(v.max()) if v.size else (float("inf") if self.case_abs.size else 0.0)
+
+    def max_rel(self) -> float:
+        v = self.case_rel[np.isfinite(self.case_rel)]
+        return float(v.max()) if v.size else (float("inf") if self.case_rel.size else 0.0)
+
+
+def mismatch(got: np.ndarray, expected: np.ndarray, atol: np.ndarray | float) -> Mismatch:
+    return Mismatch(got, expected, atol)
+
+
+def examples_from(
+    m: Mismatch,
+    spec: LossSpec,
+    stack: CaseStack,
+    what: str,
+    *,
+    dtype: str = "float64",
+    most: int = 3,
+    only_failed: bool = True,
+) -> list[Example]:
+    """The worst ``most`` cases of a comparison as :class:`Example` records."""
+    out = []
+    for k in m.order(only_failed)[:most]:
+        out.append(
+            Example(
+                what=what,
+                predictions=stack.predictions[k],
+                targets=stack.targets[k],
+                got=m.got[k],
+                expected=m.expected[k],
+                abs_err=float(m.case_abs[k]),
+                rel_err=float(m.case_rel[k]),
+                allowance=float(np.max(m.atol[k])) if m.atol.ndim else float(m.atol),
+                note=stack.note(int(k)),
+                replay=replay(spec, stack.predictions[k], stack.targets[k], dtype),
+            )
+        )
+    return out

@@ -1,0 +1,162 @@
+"""Evaluation: one object per declared loss that every check asks for values and gradients.
+
+It probes the loss once (without compiling) to pick an adapter — vmapped JAX, JAX one case at a
+time, or plain numpy — and to read the reduction from the output's shape. It keeps the compiled
+functions for the whole battery, so checks share compilations, and counts loss evaluations.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from .adapters import jax_loss
+from .adapters._base import Adapter, first_line
+from .adapters.numpy_loss import NumpyAdapter
+from .cases import CaseStack, random_stack, shape_menu
+from .errors import LossCallError
+from .spec import LossSpec
+from .tolerance import DTYPES, unit_roundoff
+
+__all__ = ["Evaluator", "NoGradient"]
+
+
+class NoGradient(Exception):
+    """The loss has no gradient oracle here (not traceable by JAX and no declared ``grad``)."""
+
+
+class Evaluator:
+    """Values and gradients of the declared loss on stacked cases.
+
+    Attributes:
+        spec: the declaration.
+        adapter: the chosen adapter (``adapter.name`` says which).
+        output: ``"scalar"`` or ``"per_example"``.
+        reduction: ``"mean"``, ``"sum"`` (scalar outputs) or ``"none"`` (per-example).
+    """
+
+    def __init__(self, spec: LossSpec) -> None:
+        self.spec = spec
+        self.adapter: Adapter
+        self.output = "scalar"
+        self.reduction = spec.reduction
+        self._user_grad: NumpyAdapter | None = None
+        self._prepare()
+
+    # -- probing -----------------------------------------------------------------------------
+    def _probe_stack(self) -> CaseStack:
+        cell = shape_menu(self.spec, "quick")[0]
+        return random_stack(self.spec, cell, np.random.default_rng(0), 2)
+
+    def _prepare(self) -> None:
+        spec = self.spec
+        stack = self._probe_stack()
+        how = jax_loss.probe(spec.loss, spec.params, stack.predictions, stack.targets)
+        if how is not None:
+            mode, out_shape = how
+            self.adapter = jax_loss.JaxAdapter(spec.loss, spec.params, vectorised=(mode == "vmap"))
+            if spec.grad is not None:
+                self._user_grad = NumpyAdapter(spec.loss, spec.params, spec.grad)
+        else:
+            self.adapter = NumpyAdapter(spec.loss, spec.params, spec.grad)
+            out_shape = self._probe_plain(stack)
+        self._read_output(out_shape, stack)
+
+    def _probe_plain(self, stack: CaseStack) -> tuple[int, ...]:
+        z, y = stack.predictions[0], stack.targets[0]
+        try:
+            with np.errstate(all="ignore"):
+                out = self.spec.loss(z.astype(np.float32), y if not np.issubdtype(y.dtype, np.floating)
+                                     else y.astype(np.float32), **self.spec.params)
+            return tuple(np.shape(np.asarray(out)))
+        except Exception as exc:
+            raise LossCallError(
+                f"loss={self.spec.name}: raised {first_line(exc)} on a plain call with predictions "
+                f"of shape {z.shape}; check the kind ({self.spec.kind!r}) and the signature "
+                f"loss(predictions, targets, **params)"
+            ) from None
+
+    def _read_output(self, out_shape: tuple[int, ...], stack: CaseStack) -> None:
+        pred_shape = stack.cell.pred_shape()
+        per_example = pred_shape if self.spec.kind == "binary" else pred_shape[:1]
+        if out_shape == ():
+            self.output, self.reduction = "scalar", self.spec.reduction
+        elif out_shape == per_example:
+            self.output, self.reduction = "per_example", "none"
+        else:
+            raise LossCallError(
+                f"loss={self.spec.name}: returned shape {out_shape} for predictions of shape "
+                f"{pred_shape}; expected a scalar or one value per example {per_example}; "
+                f"try returning the batch mean"
+            )
+
+    # -- evaluation ----------------------------------------------------------------------------
+    @property
+    def has_gradient(self) -> bool:
+        return self.adapter.has_autodiff or self.spec.grad is not None
+
+    @property
+    def has_autodiff(self) -> bool:
+        return self.adapter.has_autodiff
+
+    @property
+    def calls(self) -> int:
+        return self.adapter.calls + (self._user_grad.calls if self._user_grad else 0)
+
+    def values(self, stack: CaseStack, dtype: str = "float64", *, eager: bool = False) -> np.ndarray:
+        """Loss outputs, float64, shape (K,) or (K, per-example shape)."""
+        return self.adapter.values(stack.predictions, stack.targets, dtype, eager=eager)
+
+    def cotangent_shape(self, stack: CaseStack) -> tuple[int, ...]:
+        pred = stack.cell.pred_shape()
+        if self.output == "scalar":
+            return ()
+        return pred if self.spec.kind == "binary" else pred[:1]
+
+    def value_and_grad(
+        self, stack: CaseStack, dtype: str = "float64", cotangent: np.ndarray | None = None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """(values, gradient of ⟨cotangent, output⟩ w.r.t. predictions) per case.
+
+        ``cotangent`` has shape (K,) + output shape; ones when ``None``.
+        """
+        if not self.has_gradient:
+            raise NoGradient(self.spec.name)
+        if cotangent is None:
+            cotangent = np.ones((len(stack),) + self.cotangent_shape(stack))
+        try:
+            return self.adapter.value_and_grad(stack.predictions, stack.targets, dtype, cotangent)
+        except NotImplementedError as exc:
+            raise NoGradient(str(exc)) from None
+
+    def grads(self, stack: CaseStack, dtype: str = "float64", cotangent: np.ndarray | None = None) -> np.ndarray:
+        return self.value_and_grad(stack, dtype, cotangent)[1]
+
+    def user_grads(self, stack: CaseStack, dtype: str = "float64") -> np.ndarray | None:
+        """The declared closed-form ``grad`` per case, or ``None`` if none was declared."""
+        if self.spec.grad is None:
+            return None
+        if self._user_grad is None:  # numpy adapter: its gradient *is* the declared one
+            return self.grads(stack, dtype)
+        return self._user_grad.value_and_grad(stack.predictions, stack.targets, dtype)[1]
+
+    def jvp(self, stack: CaseStack, directions: np.ndarray, dtype: str = "float64") -> tuple[np.ndarray, np.ndarray]:
+        """(values, directional derivatives along ``directions``) by forward mode where possible."""
+        if not self.has_gradient:
+            raise NoGradient(self.spec.name)
+        try:
+            return self.adapter.jvp(stack.predictions, stack.targets, directions, dtype)
+        except NotImplementedError as exc:
+            raise NoGradient(str(exc)) from None
+
+    def computed_dtype(self, dtype: str) -> str:
+        """The precision the loss actually computed in for ``dtype`` inputs (the lower of the
+        two): a loss that casts to float32 is judged by float32's rounding."""
+        out = getattr(self.adapter, "out_dtypes", {}).get(dtype, dtype)
+        if out not in DTYPES:
+            return dtype
+        return out if unit_roundoff(out) > unit_roundoff(dtype) else dtype
+
+    def describe(self) -> dict[str, Any]:
+        return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction}

@@ -1,0 +1,1 @@
+"""Bundled examples used by the README's first command and by the tests."""

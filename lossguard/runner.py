@@ -1,0 +1,126 @@
+"""The engine: a declared spec in, a structured :class:`~lossguard.result.Result` out.
+
+The command line and the pytest plugin are thin layers over :func:`run`.
+"""
+
+from __future__ import annotations
+
+import platform
+import time
+from typing import Any
+
+from ._suggest import bad_value, did_you_mean
+from .adapters._base import first_line
+from .cases import EFFORTS
+from .checks import Context, select_checks
+from .errors import LossCallError, SpecError
+from .evaluate import Evaluator, NoGradient
+from .result import CheckResult, Result
+from .spec import LossSpec
+
+__all__ = ["run", "run_check", "versions"]
+
+
+def versions() -> dict[str, str]:
+    """Versions of the pieces that decide the numbers, for reports."""
+    import hypothesis
+    import jax
+    import numpy
+
+    from . import __version__
+
+    return {
+        "lossguard": __version__,
+        "python": platform.python_version(),
+        "numpy": numpy.__version__,
+        "jax": jax.__version__,
+        "hypothesis": hypothesis.__version__,
+    }
+
+
+def _validate(seed: Any, effort: Any) -> None:
+    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+        raise SpecError(bad_value("seed", seed, "a non-negative integer", "try seed=0"))
+    if effort not in EFFORTS:
+        raise SpecError(bad_value("effort", effort, "quick, default or thorough", did_you_mean(str(effort), EFFORTS)))
+
+
+def run_check(check: Any, ctx: Context) -> CheckResult:
+    """Run one check; whatever the user's loss does, come back with a verdict, not a traceback."""
+    t0 = time.perf_counter()
+    try:
+        result = check.run(ctx)
+    except LossCallError as exc:
+        result = CheckResult(name=check.name, verdict="error", summary=str(exc))
+    except NoGradient:
+        result = CheckResult(
+            name=check.name, verdict="error",
+            summary=("no gradient oracle: the loss is not JAX-traceable and no grad was declared; "
+                     f"declare grad=..., or skip {check.name}"),
+        )
+    except Exception as exc:  # a defect in lossguard itself: say so in one line
+        result = CheckResult(
+            name=check.name, verdict="error",
+            summary=f"lossguard could not complete this check ({first_line(exc)}); please report it with the seed",
+        )
+    if not result.hint and not result.ok:
+        result.hint = check.skip_hint
+    result.seconds = result.seconds or (time.perf_counter() - t0)
+    return result
+
+
+def run(
+    spec: LossSpec,
+    *,
+    seed: int = 0,
+    effort: str = "default",
+    only: list[str] | None = None,
+    target: str | None = None,
+    evaluator: Evaluator | None = None,
+) -> Result:
+    """Run the battery of checks that fits ``spec``.
+
+    Args:
+        spec: a declaration from :func:`lossguard.declare`.
+        seed: every random choice derives from it; the same seed gives the same report.
+        effort: ``"quick"``, ``"default"`` or ``"thorough"``.
+        only: run just these checks (names as in ``lossguard checks``).
+        target: how the loss was named on the command line (for reports).
+        evaluator: reuse an evaluator (and its compiled functions) across calls.
+
+    Returns:
+        A :class:`~lossguard.result.Result`; ``result.ok`` is True when nothing failed.
+
+    Raises:
+        SpecError, CheckNameError: bad arguments. LossCallError: the loss cannot be called at all.
+
+    Example:
+        >>> import jax
+        >>> from lossguard import declare, run
+        >>> def ce(z, y):
+        ...     return -jax.numpy.take_along_axis(jax.nn.log_softmax(z), y[:, None], -1).mean()
+        >>> run(declare(ce, kind="categorical", reference="categorical_ce"), effort="quick").ok
+        True
+    """
+    _validate(seed, effort)
+    t0 = time.perf_counter()
+    battery = select_checks(spec, only)
+    ev = evaluator or Evaluator(spec)
+    ctx = Context(spec=spec, evaluator=ev, seed=seed, effort=effort)
+    results = []
+    for check, reason in battery:
+        if reason is not None:
+            results.append(CheckResult(name=check.name, verdict="skip", summary=reason))
+            continue
+        results.append(run_check(check, ctx))
+    return Result(
+        target=target or spec.name,
+        spec=spec.describe(),
+        seed=seed,
+        effort=effort,
+        checks=results,
+        evaluation=ev.describe(),
+        versions=versions(),
+        seconds=time.perf_counter() - t0,
+        loss_evaluations=ev.calls,
+    )
