@@ -7,6 +7,7 @@ functions for the whole battery, so checks share compilations, and counts loss e
 
 from __future__ import annotations
 
+import sys
 from typing import Any
 
 import numpy as np
@@ -58,10 +59,24 @@ class Evaluator:
             self.adapter = jax_loss.JaxAdapter(spec.loss, spec.params, vectorised=(mode == "vmap"))
             if spec.grad is not None:
                 self._user_grad = NumpyAdapter(spec.loss, spec.params, spec.grad)
+        elif (torch_shape := self._probe_torch(stack)) is not None:
+            from .adapters.torch_loss import TorchAdapter
+
+            self.adapter, out_shape = TorchAdapter(spec.loss, spec.params), torch_shape
+            if spec.grad is not None:
+                self._user_grad = NumpyAdapter(spec.loss, spec.params, spec.grad)
         else:
             self.adapter = NumpyAdapter(spec.loss, spec.params, spec.grad)
             out_shape = self._probe_plain(stack)
         self._read_output(out_shape, stack)
+
+    def _probe_torch(self, stack: CaseStack) -> tuple[int, ...] | None:
+        """Torch is tried only when the loss's process already imported it (no import cost)."""
+        if "torch" not in sys.modules:
+            return None
+        from .adapters import torch_loss
+
+        return torch_loss.probe(self.spec.loss, self.spec.params, stack.predictions[0], stack.targets[0])
 
     def _probe_plain(self, stack: CaseStack) -> tuple[int, ...]:
         z, y = stack.predictions[0], stack.targets[0]
