@@ -85,7 +85,8 @@ def get_reference(name: str | Reference) -> Reference:
         return name
     if isinstance(name, str) and name in REFERENCES:
         return REFERENCES[name]
-    raise SpecError(bad_value("reference", name, "a registry name", did_you_mean(str(name), REFERENCES)))
+    hint = did_you_mean(str(name), REFERENCES)
+    raise SpecError(bad_value("reference", name, "a registry name", hint))
 
 
 def validate_params(
@@ -139,14 +140,15 @@ def _infer_kind(ref: Reference, z: np.ndarray, y: np.ndarray) -> str:
     wanted = " or ".join(
         {"categorical": "labels (N,)", "distribution": "rows (N, C)"}[k] for k in sorted(ref.kinds)
     )
-    raise SpecError(bad_value("y", f"shape {y.shape}", f"{wanted} for {ref.name!r} with z {z.shape}",
-                              "check the target kind of this reference"))
+    raise SpecError(bad_value("y", f"shape {y.shape}", f"{wanted} for {ref.name!r} with z "
+                              f"{z.shape}", "check the target kind of this reference"))
 
 
 def _labels(y: np.ndarray, classes: int, ignored: np.ndarray) -> np.ndarray:
     if not np.issubdtype(y.dtype, np.integer):
         if not (np.all(np.isfinite(y)) and np.all(y == np.round(y))):
-            raise SpecError(bad_value("y", y.dtype.name, "integer class labels", "try y.astype(int)"))
+            raise SpecError(bad_value("y", y.dtype.name, "integer class labels",
+                                      "try y.astype(int)"))
     labels = np.where(ignored, 0, y).astype(np.int64)  # ignored rows get label 0: finite, weight 0
     if np.any((labels < 0) | (labels >= classes)):
         bad = int(labels[(labels < 0) | (labels >= classes)][0])
@@ -207,7 +209,8 @@ def evaluate_reference(
     y = np.asarray(y)
     kind = _infer_kind(ref, z, y)
     if ignore_label is not None and kind != "categorical":
-        raise SpecError(bad_value("ignore_label", ignore_label, f"no ignore label for kind={kind!r}",
+        raise SpecError(bad_value("ignore_label", ignore_label,
+                                  f"no ignore label for kind={kind!r}",
                                   "drop it, or pass integer labels"))
     classes = z.shape[-1] if kind != "binary" else None
     resolved = validate_params(ref, params, classes)

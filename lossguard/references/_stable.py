@@ -130,7 +130,8 @@ def _shifted(x: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray, np.ndarr
     """(m, x − m, s) with m the max along ``axis`` and s = Σ_{c ≠ argmax} e^(x_c − m)."""
     m = np.max(x, axis=axis, keepdims=True)
     finite_m = np.where(np.isfinite(m), m, 0.0)
-    d = x - finite_m  # shift by the max: logsumexp(x) = m + logsumexp(x − m)
+    with np.errstate(over="ignore"):  # −big − big → −inf: the correctly rounded log-probability
+        d = x - finite_m  # shift by the max: logsumexp(x) = m + logsumexp(x − m)
     e = np.exp(d)
     k = np.argmax(x, axis=axis)
     k = np.expand_dims(k, axis)
@@ -299,7 +300,8 @@ def pow_from_log(gamma: float, logx: ArrayLike) -> np.ndarray:
     logx = f64(logx)
     if gamma == 0:
         return np.ones_like(logx)  # x⁰ = 1, including 0⁰ = 1 (IEEE-754 pow(0, 0) = 1)
-    return np.exp(gamma * logx)  # x^γ = e^(γ log x), and e^(−inf) = 0 gives 0^γ = 0 for γ > 0
+    with np.errstate(over="ignore"):  # γ · log x → −inf only when x^γ underflows to 0 anyway
+        return np.exp(gamma * logx)  # x^γ = e^(γ log x), and e^(−inf) = 0 gives 0^γ = 0 for γ > 0
 
 
 # --------------------------------------------------------------------------------- JAX twins

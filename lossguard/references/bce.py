@@ -1,4 +1,4 @@
-"""Binary cross-entropy (logistic loss), in logits or in probabilities, with a positive-class weight.
+"""Binary cross-entropy (logistic loss) in logits or probabilities, with a positive-class weight.
 
 Notation and shapes: predictions ``z`` of shape (N,) or (N, D) — one independent binary output
 per element — and targets ``y`` of the same shape with values in [0, 1] (soft targets allowed).
@@ -7,7 +7,7 @@ p = σ(z) in logits; in probabilities ``z`` is p itself. w is ``pos_weight`` (1 
 Formula (per element):
 
     logits:         ℓ = (1 − y) z + (1 + (w − 1) y) softplus(−z)
-                      = (1 − y) softplus(z) + w y softplus(−z)        (computed form, no cancellation)
+                      = (1 − y) softplus(z) + w y softplus(−z)   (computed form: nothing cancels)
     probabilities:  ℓ = −[w y log p + (1 − y) log(1 − p)]              (0 · log 0 = 0)
 
     ∂ℓ/∂z = (1 − y) σ(z) − w y σ(−z)        (= σ(z) − y when w = 1)

@@ -51,19 +51,12 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from ._base import Param, Reference
-from ._stable import f64, j_log_softmax, j_take_label, log_softmax, onehot, softmax, take_label, xlogy
+from ._stable import (f64, j_log_softmax, j_take_label, log_softmax, onehot, softmax, take_label,
+                      xlogy)
 
-__all__ = [
-    "CATEGORICAL_CE",
-    "SMOOTHED_CE",
-    "ce_per_example",
-    "ce_per_example_grad",
-    "ce_jax",
-    "smoothed_per_example",
-    "smoothed_per_example_grad",
-    "smoothed_jax",
-    "softmax_ce_hessian",
-]
+__all__ = ["CATEGORICAL_CE", "SMOOTHED_CE", "ce_per_example", "ce_per_example_grad", "ce_jax",
+           "smoothed_per_example", "smoothed_per_example_grad", "smoothed_jax",
+           "softmax_ce_hessian"]
 
 
 def _is_labels(z: Any, y: Any) -> bool:

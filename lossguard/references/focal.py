@@ -54,31 +54,13 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from ._base import Param, Reference
-from ._stable import (
-    f64,
-    j_log1m_softmax_at,
-    j_log_sigmoid,
-    j_log_softmax,
-    j_pow_from_log,
-    j_take_label,
-    log1m_softmax_at,
-    log_sigmoid,
-    log_softmax,
-    pow_from_log,
-    sigmoid,
-    take_label,
-)
+from ._stable import (f64, j_log1m_softmax_at, j_log_sigmoid, j_log_softmax, j_pow_from_log,
+                      j_take_label, log1m_softmax_at, log_sigmoid, log_softmax, pow_from_log,
+                      sigmoid, take_label)
 
-__all__ = [
-    "FOCAL_BINARY",
-    "FOCAL_MULTICLASS",
-    "focal_binary_per_example",
-    "focal_binary_per_example_grad",
-    "focal_binary_jax",
-    "focal_multiclass_per_example",
-    "focal_multiclass_per_example_grad",
-    "focal_multiclass_jax",
-]
+__all__ = ["FOCAL_BINARY", "FOCAL_MULTICLASS", "focal_binary_per_example",
+           "focal_binary_per_example_grad", "focal_binary_jax", "focal_multiclass_per_example",
+           "focal_multiclass_per_example_grad", "focal_multiclass_jax"]
 
 _CITATION = (
     "Lin, T.-Y., Goyal, P., Girshick, R., He, K., Dollár, P., 'Focal Loss for Dense Object "
@@ -122,7 +104,7 @@ def _binary_parts(z: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, ...]:
     lp, lq = log_sigmoid(z), log_sigmoid(-z)  # log(1 − σ(z)) = log σ(−z)
     b = -(y * lp + (1.0 - y) * lq)  # cross-entropy; for hard y it is −log p_t = softplus(−s z)
     with np.errstate(divide="ignore"):
-        # 1 − p_t = y (1 − p) + (1 − y) p, so log(1 − p_t) = logaddexp(log y + log(1−p), log(1−y) + log p);
+        # 1 − p_t = y(1 − p) + (1 − y)p ⇒ log(1 − p_t) = logaddexp(log y + lq, log(1 − y) + lp);
         # for y ∈ {0, 1} one term is −inf and logaddexp returns the other exactly (log σ(−s z))
         l1mpt = np.logaddexp(np.log(y) + lq, np.log1p(-y) + lp)
     return lp, lq, b, l1mpt
@@ -132,10 +114,8 @@ def _alpha_t(y: np.ndarray, alpha: float | None) -> np.ndarray | float:
     return 1.0 if alpha is None else alpha * y + (1.0 - alpha) * (1.0 - y)
 
 
-def focal_binary_per_example(
-    z: ArrayLike, y: ArrayLike, inputs: str = "logits", gamma: float = 2.0,
-    alpha: float | None = 0.25,
-) -> np.ndarray:
+def focal_binary_per_example(z: ArrayLike, y: ArrayLike, inputs: str = "logits",
+                             gamma: float = 2.0, alpha: float | None = 0.25) -> np.ndarray:
     """Sigmoid focal loss of each element.
 
     Shapes: ``z``, ``y`` (N,) or (N, D) → same shape.
@@ -160,10 +140,8 @@ def focal_binary_per_example(
     return _alpha_t(y, alpha) * pow_from_log(gamma, l1mpt) * b  # (1 − p_t)^γ = e^(γ log(1 − p_t))
 
 
-def focal_binary_per_example_grad(
-    z: ArrayLike, y: ArrayLike, inputs: str = "logits", gamma: float = 2.0,
-    alpha: float | None = 0.25,
-) -> np.ndarray:
+def focal_binary_per_example_grad(z: ArrayLike, y: ArrayLike, inputs: str = "logits",
+                                  gamma: float = 2.0, alpha: float | None = 0.25) -> np.ndarray:
     """∂ℓ/∂z of :func:`focal_binary_per_example`, finite for every γ ≥ 0 and finite z.
 
     Shapes: (N,) or (N, D) → same shape.
@@ -189,19 +167,17 @@ def focal_binary_per_example_grad(
     dce = (1.0 - y) * sigmoid(z) - y * sigmoid(-z)
     grad = pow_from_log(gamma, l1mpt) * dce
     if gamma != 0:
-        # ∂(1 − p_t)^γ/∂z = γ (1 − 2y) p (1 − p) (1 − p_t)^(γ−1); p (1 − p) ≤ (1 − p_t) / min(y, 1−y)
-        # keeps the exponent finite, and for hard y it is γ s' p_t (1 − p_t)^γ
-        with np.errstate(invalid="ignore"):
+        # ∂(1 − p_t)^γ/∂z = γ (1 − 2y) p (1 − p) (1 − p_t)^(γ−1) as one exponential: p (1 − p) ≤
+        # 2 (1 − p_t) for any y keeps it ≤ γ log(1 − p_t) + log 2 (hard y: p_t (1 − p_t)^γ)
+        with np.errstate(invalid="ignore", over="ignore"):  # exponent −inf ⇒ e^(−inf) = 0 (limit)
             expo = lp + lq + (gamma - 1.0) * l1mpt
         dmod = gamma * (1.0 - 2.0 * y) * np.exp(np.where(np.isnan(expo), -np.inf, expo))
         grad = grad + dmod * b
     return _alpha_t(y, alpha) * grad
 
 
-def focal_binary_jax(
-    z: jax.Array, y: jax.Array, inputs: str = "logits", gamma: float = 2.0,
-    alpha: float | None = 0.25,
-) -> jax.Array:
+def focal_binary_jax(z: jax.Array, y: jax.Array, inputs: str = "logits", gamma: float = 2.0,
+                     alpha: float | None = 0.25) -> jax.Array:
     """JAX twin of :func:`focal_binary_per_example` (differentiable in ``z``).
 
     Example:
@@ -230,9 +206,8 @@ def _alpha_y(y: np.ndarray, alpha: Any) -> np.ndarray | float:
     return f64(alpha)[y]
 
 
-def focal_multiclass_per_example(
-    z: ArrayLike, y: ArrayLike, inputs: str = "logits", gamma: float = 2.0, alpha: Any = None
-) -> np.ndarray:
+def focal_multiclass_per_example(z: ArrayLike, y: ArrayLike, inputs: str = "logits",
+                                 gamma: float = 2.0, alpha: Any = None) -> np.ndarray:
     """Softmax focal loss of each example.
 
     Shapes: ``z`` (N, C), ``y`` labels (N,) → (N,).
@@ -258,9 +233,8 @@ def focal_multiclass_per_example(
     return _alpha_y(y, alpha) * pow_from_log(gamma, lqy) * -lpy  # (1 − p_y)^γ = e^(γ log(1 − p_y))
 
 
-def focal_multiclass_per_example_grad(
-    z: ArrayLike, y: ArrayLike, inputs: str = "logits", gamma: float = 2.0, alpha: Any = None
-) -> np.ndarray:
+def focal_multiclass_per_example_grad(z: ArrayLike, y: ArrayLike, inputs: str = "logits",
+                                      gamma: float = 2.0, alpha: Any = None) -> np.ndarray:
     """∂ℓ/∂z of :func:`focal_multiclass_per_example`.
 
     Shapes: (N, C) → (N, C).
@@ -284,21 +258,22 @@ def focal_multiclass_per_example_grad(
     lpy, lqy = take_label(ls, y)[..., None], log1m_softmax_at(ls, y)[..., None]
     at = (y[..., None] == np.arange(z.shape[-1]))
     alive = np.isfinite(lqy)
-    # r_c = (δ_cy − p_c)/(1 − p_y): 1 at the label, −p_c/(1 − p_y) = −e^(ls_c − log(1 − p_y)) elsewhere,
-    # a ratio in [−1, 0] (p_c ≤ 1 − p_y); 0 where 1 − p_y = 0 (then every p_c = 0 too)
+    # r_c = (δ_cy − p_c)/(1 − p_y): 1 at the label, −e^(ls_c − log(1 − p_y)) elsewhere, a ratio in
+    # [−1, 0] since p_c ≤ 1 − p_y; 0 where 1 − p_y = 0 (then every p_c = 0 too)
     r = np.where(at, 1.0, -np.exp(np.where(at, -np.inf, ls) - np.where(alive, lqy, 0.0)))
     r = np.where(at | alive, r, 0.0)
+    # p log p → 0 as p → 0 (0 · log 0 = 0), so an underflowed p_y (log p_y = −inf) contributes 0
+    plogp = np.where(np.isfinite(lpy), np.exp(lpy) * np.where(np.isfinite(lpy), lpy, 0.0), 0.0)
     # γ p_y log p_y − (1 − p_y): both terms ≤ 0, nothing cancels
-    inner = gamma * np.exp(lpy) * lpy - np.exp(lqy)
+    inner = gamma * plogp - np.exp(lqy)
     ay = _alpha_y(y, alpha)
     scale = np.asarray(ay)[..., None] if np.ndim(ay) else ay
     # ∂ℓ/∂z_c = α_y (1 − p_y)^γ r_c (γ p_y log p_y − (1 − p_y)), the (1 − p_y)^(γ−1) absorbed in r_c
     return scale * pow_from_log(gamma, lqy) * r * inner
 
 
-def focal_multiclass_jax(
-    z: jax.Array, y: jax.Array, inputs: str = "logits", gamma: float = 2.0, alpha: Any = None
-) -> jax.Array:
+def focal_multiclass_jax(z: jax.Array, y: jax.Array, inputs: str = "logits", gamma: float = 2.0,
+                         alpha: Any = None) -> jax.Array:
     """JAX twin of :func:`focal_multiclass_per_example`.
 
     Example:
@@ -308,12 +283,7 @@ def focal_multiclass_jax(
     """
     ls = j_log_softmax(jnp.asarray(z))
     lpy, lqy = j_take_label(ls, y), j_log1m_softmax_at(ls, y)  # 1 − p_y = Σ_{c≠y} p_c
-    if alpha is None:
-        ay = 1.0
-    elif jnp.ndim(alpha) == 0:
-        ay = alpha
-    else:
-        ay = jnp.asarray(alpha)[y]
+    ay = 1.0 if alpha is None else (alpha if np.ndim(alpha) == 0 else jnp.asarray(alpha)[y])
     return ay * j_pow_from_log(gamma, lqy) * -lpy
 
 
@@ -324,13 +294,9 @@ FOCAL_BINARY = Reference(
     name="focal_binary",
     summary="sigmoid focal loss −α_t (1 − p_t)^γ log p_t, stable in log space",
     formula="−α_t (1 − p_t)^γ log p_t,  p_t = σ((2y − 1) z),  α_t = α y + (1 − α)(1 − y)",
-    kinds=frozenset({"binary"}),
-    inputs=frozenset({"logits"}),
-    params=(
-        _GAMMA,
-        Param(name="alpha", default=0.25, doc="weight α of positives (1 − α for negatives), None = 1",
-              validate=_check_alpha_binary),
-    ),
+    kinds=frozenset({"binary"}), inputs=frozenset({"logits"}),
+    params=(_GAMMA, Param("alpha", 0.25, "weight α of positives (1 − α for negatives), None = 1",
+                          _check_alpha_binary)),
     per_example=focal_binary_per_example,
     per_example_grad=focal_binary_per_example_grad,
     jax_per_example=focal_binary_jax,
@@ -348,14 +314,9 @@ FOCAL_MULTICLASS = Reference(
     name="focal_multiclass",
     summary="softmax focal loss −α_y (1 − p_y)^γ log p_y, stable in log space",
     formula="−α_y (1 − p_y)^γ log softmax(z)_y",
-    kinds=frozenset({"categorical"}),
-    inputs=frozenset({"logits"}),
-    params=(
-        _GAMMA,
-        Param(name="alpha", default=None,
-              doc="None, one number, or a per-class list α_c weighting each example by α_y",
-              validate=_check_alpha_multi),
-    ),
+    kinds=frozenset({"categorical"}), inputs=frozenset({"logits"}),
+    params=(_GAMMA, Param("alpha", None, "None, one number, or a per-class list α_c (weight α_y)",
+                          _check_alpha_multi)),
     per_example=focal_multiclass_per_example,
     per_example_grad=focal_multiclass_per_example_grad,
     jax_per_example=focal_multiclass_jax,
