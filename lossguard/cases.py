@@ -17,12 +17,12 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .ladders import PATTERNS, ladder_rows, magnitudes
+from .options import EFFORTS
 from .spec import LossSpec
 
 __all__ = ["Cell", "CaseStack", "EFFORTS", "shape_menu", "cases_per_cell", "target_domain",
            "random_stack", "ladder_stack", "to_inputs", "concat", "draw_targets"]
 
-EFFORTS = ("quick", "default", "thorough")
 
 
 @dataclass(frozen=True)

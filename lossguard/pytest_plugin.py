@@ -1,3 +1,373 @@
-"""pytest plugin (registered through the ``pytest11`` entry point)."""
+"""The pytest skin: one collected test per check, or a fixture for ad-hoc use.
+
+Registered through the ``pytest11`` entry point, so installing lossguard is enough.
+
+Runnable examples of both ways in: ``recipes/orchard/test_sorting_line.py``.
+
+**A declaration that expands into tests.** In a test module, assign the result of
+:func:`battery` to a name pytest collects (``test_*`` by default)::
+
+    from lossguard.pytest_plugin import battery
+    from conveyor_gaps import gap_ce
+    test_gaps = battery(gap_ce, kind="categorical", reference="categorical_ce", ignore_label=-1)
+
+pytest then collects one item per check that :func:`lossguard.checks.select_checks` picks for
+the declaration, named ``test_gaps[reference]``, ``test_gaps[finite]`` … so ``-k``,
+``-x``, ``--lf``, ``-n`` (pytest-xdist) and ``--junitxml`` behave as for any test. Checks that
+do not apply (or were turned off) are collected as skipped, with the reason. The battery runs
+once per declaration per session (per worker under xdist), restricted to the checks selected
+for this run; every item asserts its own check's verdict and fails with that check's report.
+
+**A fixture for your own test functions.** ``run_battery(loss, **declaration)`` runs the
+battery with the session's settings, fails the test with the report when a check fails, and
+returns the :class:`~lossguard.result.Result` (pass ``require_pass=False`` to inspect it
+yourself)::
+
+    def test_gaps_leave_empty_cups_out(run_battery):
+        result = run_battery(gap_ce, kind="categorical", reference="categorical_ce",
+                             ignore_label=-1, only=["reference"])
+        assert result.check("reference").failed == 0
+
+**Settings.** The run settings of :mod:`lossguard.options` (seed, effort) are pytest options
+(``--lossguard-seed 3``) and ini keys (``lossguard_effort = quick``); the command line wins over
+the ini file. The effective values are printed in the report header, and a closing section lists
+every failed check with its worst case. Items carry the marker ``lossguard`` (``-m lossguard``).
+"""
 
 from __future__ import annotations
+
+import sys
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import pytest
+
+from .errors import LossguardError
+from .options import SETTINGS
+from .spec import LossSpec, declare
+
+__all__ = ["battery", "Battery", "CheckItem", "run_battery"]
+
+_MARKER = "lossguard"
+
+
+# -- the declaration ------------------------------------------------------------------------
+@dataclass(eq=False)
+class Battery:
+    """A declared loss waiting to be collected as one test item per check.
+
+    Build it with :func:`battery`. ``spec`` is ``None`` when the declaration itself was bad;
+    ``problem`` then says why (every collected item fails with that one line).
+    """
+
+    spec: LossSpec | None
+    problem: str = ""
+    only: tuple[str, ...] | None = None
+    seed: int | None = None
+    effort: str | None = None
+    marks: tuple[Any, ...] = ()
+    module: str = ""
+    lineno: int = 0
+
+    def selection(self) -> list[tuple[str, str | None]]:
+        """(check name, skip reason or None) for this declaration, in battery order."""
+        from .checks import select_checks
+
+        assert self.spec is not None
+        only = list(self.only) if self.only is not None else None
+        return [(check.name, reason) for check, reason in select_checks(self.spec, only)]
+
+
+def _declared(loss: Any, declaration: dict[str, Any]) -> LossSpec:
+    if isinstance(loss, LossSpec):
+        if declaration:
+            raise LossguardError(
+                f"declaration={sorted(declaration)}: expected no declaration arguments next to a "
+                f"LossSpec; try passing either the spec or the loss with its arguments")
+        return loss
+    return declare(loss, **declaration)
+
+
+def battery(
+    loss: Callable[..., Any] | LossSpec,
+    *,
+    only: Sequence[str] | None = None,
+    seed: int | None = None,
+    effort: str | None = None,
+    marks: Iterable[Any] = (),
+    **declaration: Any,
+) -> Battery:
+    """Declare a loss in a test module; pytest collects one item per check.
+
+    Args:
+        loss: the loss function, or a :class:`~lossguard.spec.LossSpec` from ``declare``.
+        only: collect just these checks (names as in ``lossguard checks``).
+        seed, effort: override the session settings for this declaration.
+        marks: pytest marks applied to every item (e.g. ``[pytest.mark.slow]``).
+        **declaration: the arguments of :func:`lossguard.declare` (``kind=…``, ``reference=…``).
+
+    Returns:
+        A :class:`Battery`; assign it to a name pytest collects, such as ``test_my_loss``.
+
+    Example:
+        >>> import jax
+        >>> def ce(z, y):
+        ...     return -jax.numpy.take_along_axis(jax.nn.log_softmax(z), y[:, None], -1).mean()
+        >>> test_ce = battery(ce, kind="categorical", reference="categorical_ce", only=["reference"])
+        >>> [name for name, _ in test_ce.selection()]
+        ['reference']
+    """
+    caller = sys._getframe(1)
+    where = {"module": str(caller.f_globals.get("__name__", "")), "lineno": caller.f_lineno - 1}
+    settings = {"only": tuple(only) if only is not None else None, "seed": seed, "effort": effort,
+                "marks": tuple(marks)}
+    try:
+        spec = _declared(loss, declaration)
+    except LossguardError as exc:
+        return Battery(spec=None, problem=str(exc), **settings, **where)
+    return Battery(spec=spec, **settings, **where)
+
+
+# -- collected items -------------------------------------------------------------------------
+class CheckFailed(Exception):
+    """Raised by a :class:`CheckItem` whose check failed; its text is the check's report."""
+
+
+class CheckItem(pytest.Item):
+    """One check of one declared loss, e.g. ``test_gaps[finite]``."""
+
+    def __init__(self, *, battery: Battery, check: str, reason: str | None = None, **kw: Any) -> None:
+        super().__init__(**kw)
+        self.battery = battery
+        self.check = check
+        self.reason = reason
+        self.add_marker(_MARKER)
+        for mark in battery.marks:
+            self.add_marker(mark)
+        if reason is not None:
+            self.add_marker(pytest.mark.skip(reason=reason))
+        self.user_properties.append(("lossguard_check", check))
+
+    def runtest(self) -> None:
+        if self.battery.spec is None:
+            raise CheckFailed(self.battery.problem)
+        outcome = _state(self.config).outcome(self.battery, self.session.items, self.check)
+        if isinstance(outcome, str):
+            raise CheckFailed(outcome)
+        result = outcome.check(self.check)
+        self.user_properties.append(("lossguard_verdict", result.verdict))
+        if result.verdict == "skip":
+            pytest.skip(result.summary)
+        if not result.ok:
+            self.user_properties.append((_FAILURE_PROPERTY, failure_text(result)))
+            raise CheckFailed(failure_report(result))
+
+    def repr_failure(self, excinfo: Any, style: Any = None) -> str | Any:
+        if isinstance(excinfo.value, CheckFailed):
+            return str(excinfo.value)
+        return super().repr_failure(excinfo)
+
+    def reportinfo(self) -> tuple[Any, int | None, str]:
+        return self.path, self.battery.lineno, self.name
+
+
+@pytest.hookimpl(tryfirst=True)
+def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[pytest.Item] | None:
+    if not isinstance(obj, Battery):
+        return None
+    module = getattr(getattr(collector, "module", None), "__name__", None)
+    if module is not None and obj.module and module != obj.module:
+        return []  # imported from the module that declared it: collected there, not here
+    if not collector.funcnamefilter(name):
+        collector.warn(pytest.PytestCollectionWarning(
+            f"{name} = battery(...) is not collected: its name does not match python_functions "
+            f"(try test_{name})"))
+        return []
+    if obj.spec is None:
+        return [CheckItem.from_parent(collector, name=f"{name}[declaration]", battery=obj, check="declaration")]
+    try:
+        selection = obj.selection()
+    except LossguardError as exc:
+        bad = Battery(spec=None, problem=str(exc), marks=obj.marks, module=obj.module, lineno=obj.lineno)
+        return [CheckItem.from_parent(collector, name=f"{name}[declaration]", battery=bad, check="declaration")]
+    return [CheckItem.from_parent(collector, name=f"{name}[{check}]", battery=obj, check=check, reason=reason)
+            for check, reason in selection]
+
+
+# -- per-run state ---------------------------------------------------------------------------
+@dataclass
+class _State:
+    """What one pytest run (one xdist worker) keeps: settings, results, failed checks."""
+
+    settings: dict[str, Any]
+    sources: dict[str, str]
+    outcomes: dict[int, tuple[Battery, Any]] = field(default_factory=dict)
+    failures: list[tuple[str, str]] = field(default_factory=list)
+    adhoc: dict[tuple[Any, ...], tuple[LossSpec, Any]] = field(default_factory=dict)
+
+    def resolve(self, seed: int | None, effort: str | None) -> tuple[int, str]:
+        return (self.settings["seed"] if seed is None else seed,
+                self.settings["effort"] if effort is None else effort)
+
+    def outcome(self, bat: Battery, items: Sequence[Any], check: str) -> Any:
+        """The Result for ``bat`` (or a one-line problem), run once with the checks of this run."""
+        key = id(bat)  # the Battery is kept alive in the value, so its id cannot be reused
+        if key not in self.outcomes:
+            wanted = [i.check for i in items if isinstance(i, CheckItem) and i.battery is bat and i.reason is None]
+            if check not in wanted:
+                wanted.append(check)
+            seed, effort = self.resolve(bat.seed, bat.effort)
+            self.outcomes[key] = (bat, _run_safely(bat.spec, seed, effort, wanted))  # type: ignore[arg-type]
+        return self.outcomes[key][1]
+
+
+_STATE = pytest.StashKey[_State]()
+#: user property carrying a failed check's one-line account (travels through xdist and JUnit XML)
+_FAILURE_PROPERTY = "lossguard_failure"
+
+
+def _state(config: Any) -> _State:
+    return config.stash[_STATE]
+
+
+def _run_safely(spec: LossSpec, seed: int, effort: str, only: list[str] | None) -> Any:
+    """``run`` whose every problem comes back as one line, never as a lossguard traceback."""
+    from .adapters._base import first_line
+    from .runner import run
+
+    try:
+        return run(spec, seed=seed, effort=effort, only=only)
+    except LossguardError as exc:
+        return f"lossguard could not run the battery: {exc}"
+    except Exception as exc:  # a defect in lossguard itself: one line, with the seed
+        return f"lossguard could not run the battery ({first_line(exc)}); please report it with seed={seed}"
+
+
+def failure_report(c: Any) -> str:
+    """The failure message of a check: ``name verdict: summary`` first (pytest's short summary
+    shows that line), then the check's text report."""
+    from .report.text import render_check
+
+    body = render_check(c).split("\n")[1:]
+    return "\n".join([f"{c.name} {'failed' if c.verdict == 'fail' else 'could not run'}: {c.summary}"] + body)
+
+
+def failure_text(c: Any) -> str:
+    """A failed check in two lines: name, verdict and summary; then its worst case."""
+    from .report.text import one_line_example
+
+    text = f"{c.name} ({c.verdict}): {c.summary}"
+    return text + (f"\nworst case: {one_line_example(c.worst[0])}" if c.worst else "")
+
+
+# -- options, header, summary ----------------------------------------------------------------
+def pytest_addoption(parser: Any) -> None:
+    group = parser.getgroup("lossguard", "lossguard: numerical checks of loss functions")
+    for s in SETTINGS:
+        extra = f"; one of {', '.join(s.choices)}" if s.choices else ""
+        group.addoption(s.pytest_flag, dest=s.ini, default=None, metavar=s.name.upper(),
+                        help=f"{s.help}{extra}; default {s.default!r}; ini key {s.ini}")
+        parser.addini(s.ini, help=f"lossguard: {s.help}{extra}", default="")
+
+
+def _read_settings(config: Any) -> tuple[dict[str, Any], dict[str, str]]:
+    values: dict[str, Any] = {}
+    sources: dict[str, str] = {}
+    for s in SETTINGS:
+        raw, source = config.getoption(s.ini), s.pytest_flag
+        if raw is None:
+            raw, source = config.getini(s.ini), f"ini {s.ini}"
+        if raw in (None, ""):
+            values[s.name], sources[s.name] = s.default, "default"
+            continue
+        try:
+            values[s.name] = s.parse(raw)
+        except ValueError:
+            expected = f"one of {', '.join(s.choices)}" if s.choices else f"a value of type {s.type.__name__}"
+            raise pytest.UsageError(f"{source}={raw!r}: expected {expected}; try {s.default!r}") from None
+        sources[s.name] = source
+    if values.get("seed", 0) < 0:
+        raise pytest.UsageError(f"{sources['seed']}={values['seed']!r}: expected a non-negative integer; try 0")
+    return values, sources
+
+
+def pytest_configure(config: Any) -> None:
+    config.addinivalue_line("markers", f"{_MARKER}: a lossguard check of a declared loss")
+    values, sources = _read_settings(config)
+    state = _State(values, sources)
+    config.stash[_STATE] = state
+    config.pluginmanager.register(_Recorder(state), "lossguard-recorder")
+
+
+def pytest_report_header(config: Any) -> str:
+    from . import __version__
+
+    state = _state(config)
+    parts = [f"{name}={state.settings[name]} ({state.sources[name]})" for name in state.settings]
+    return f"lossguard {__version__}: " + ", ".join(parts)
+
+
+class _Recorder:
+    """Collects the failed checks reported by items (here or on xdist workers) into the state."""
+
+    def __init__(self, state: _State) -> None:
+        self.state = state
+
+    def pytest_runtest_logreport(self, report: Any) -> None:
+        if report.when != "call":
+            return
+        for key, value in report.user_properties:
+            if key == _FAILURE_PROPERTY:
+                self.state.failures.append((report.nodeid, str(value)))
+
+
+def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: Any) -> None:
+    failures = _state(config).failures
+    if not failures:
+        return
+    tr = terminalreporter
+    tr.write_sep("=", "lossguard: failed checks", red=True)
+    last = None
+    for nodeid, text in failures:
+        if nodeid != last:
+            tr.write_line(nodeid)
+        last = nodeid
+        for line in text.split("\n"):
+            tr.write_line(f"    {line}")
+
+
+# -- the fixture -----------------------------------------------------------------------------
+@pytest.fixture
+def run_battery(request: Any) -> Callable[..., Any]:
+    """Run a battery inside your own test: ``run_battery(loss, kind=…, …) -> Result``.
+
+    Keyword arguments: ``only``, ``seed``, ``effort`` (default: the session settings),
+    ``require_pass`` (default True: fail the test with the report of the failed checks), and the
+    arguments of :func:`lossguard.declare`. A :class:`~lossguard.spec.LossSpec` may be passed
+    instead of the loss; the same spec object with the same settings runs once per session.
+    """
+    state = _state(request.config)
+
+    def go(loss: Callable[..., Any] | LossSpec, *, only: Sequence[str] | None = None,
+           seed: int | None = None, effort: str | None = None, require_pass: bool = True,
+           **declaration: Any) -> Any:
+        try:
+            spec = _declared(loss, declaration)
+        except LossguardError as exc:
+            pytest.fail(str(exc), pytrace=False)
+        s, e = state.resolve(seed, effort)
+        chosen = list(only) if only is not None else None
+        key = (id(spec), s, e, tuple(chosen) if chosen is not None else None)
+        if key not in state.adhoc or state.adhoc[key][0] is not spec:
+            state.adhoc[key] = (spec, _run_safely(spec, s, e, chosen))
+        result = state.adhoc[key][1]
+        if isinstance(result, str):
+            pytest.fail(result, pytrace=False)
+        if require_pass and not result.ok:
+            bad = [c for c in result.checks if not c.ok]
+            request.node.user_properties.extend((_FAILURE_PROPERTY, failure_text(c)) for c in bad)
+            pytest.fail("\n".join(failure_report(c) for c in bad), pytrace=False)
+        return result
+
+    return go

@@ -7,11 +7,12 @@ from __future__ import annotations
 
 import platform
 import time
+from collections.abc import Sequence
 from typing import Any
 
 from ._suggest import bad_value, did_you_mean
 from .adapters._base import first_line
-from .cases import EFFORTS
+from .cases import EFFORTS, Cell
 from .checks import Context, select_checks
 from .errors import LossCallError, SpecError
 from .evaluate import Evaluator, NoGradient
@@ -77,6 +78,8 @@ def run(
     only: list[str] | None = None,
     target: str | None = None,
     evaluator: Evaluator | None = None,
+    cells: Sequence[Cell] | None = None,
+    progress: Any = None,
 ) -> Result:
     """Run the battery of checks that fits ``spec``.
 
@@ -87,6 +90,9 @@ def run(
         only: run just these checks (names as in ``lossguard checks``).
         target: how the loss was named on the command line (for reports).
         evaluator: reuse an evaluator (and its compiled functions) across calls.
+        cells: use these shapes instead of the shape menu (``None``: the menu for ``effort``).
+        progress: optional ``progress(check_name, done, total)`` called before each check
+            (and once more with ``done == total``); see :mod:`lossguard.report.progress`.
 
     Returns:
         A :class:`~lossguard.result.Result`; ``result.ok`` is True when nothing failed.
@@ -106,13 +112,18 @@ def run(
     t0 = time.perf_counter()
     battery = select_checks(spec, only)
     ev = evaluator or Evaluator(spec)
-    ctx = Context(spec=spec, evaluator=ev, seed=seed, effort=effort)
+    ctx = Context(spec=spec, evaluator=ev, seed=seed, effort=effort,
+                  cells_override=tuple(cells) if cells else None)
     results = []
-    for check, reason in battery:
+    for i, (check, reason) in enumerate(battery):
+        if progress is not None:
+            progress(check.name, i, len(battery))
         if reason is not None:
             results.append(CheckResult(name=check.name, verdict="skip", summary=reason))
             continue
         results.append(run_check(check, ctx))
+    if progress is not None:
+        progress("done", len(battery), len(battery))
     return Result(
         target=target or spec.name,
         spec=spec.describe(),

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from ..report import write_reports
+from ..report import progress_for, write_reports
 from ..report.text import render
 from ..runner import run
 from ._target import add_target_options, spec_from_args
@@ -25,7 +25,8 @@ def add_parser(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
 
 def main(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, args.target)
-    result = run(spec, seed=args.seed, effort=args.effort, only=args.only, target=args.target)
+    with progress_for(sys.stdout) as update:
+        result = run(spec, seed=args.seed, effort=args.effort, only=args.only, target=args.target, progress=update)
     sys.stdout.write(render(result, color=sys.stdout.isatty()))
     write_reports(result, json_path=args.json, markdown_path=args.markdown)
     return result.exit_code
