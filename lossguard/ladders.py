@@ -15,12 +15,18 @@ Hypothesis strategies, so every generator of extremes lives here.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import ml_dtypes
 import numpy as np
 
 from .tolerance import dtype_of
 
-__all__ = ["magnitudes", "PATTERNS", "ladder_rows", "largest_finite"]
+__all__ = ["magnitudes", "PATTERNS", "ladder_rows", "largest_finite", "smallest_subnormal",
+           "smallest_normal", "next_below_one", "round_to", "common_grid", "ulp", "wide_magnitudes",
+           "profile_magnitudes", "probability_edges", "EDGE_STEPS", "approach", "probability_rows",
+           "sparse_simplex_rows", "mask_non_targets", "round_down", "flush_subnormals",
+           "has_subnormals"]
 
 PATTERNS = ("right", "wrong", "equal", "huge", "mixed")
 
@@ -41,7 +47,7 @@ def magnitudes(dtype: str | np.dtype = "float64", *, up_to_max: bool = False) ->
     vals = [v for v in base if v <= top]
     if up_to_max:
         e = 5
-        while 10.0**e < top:
+        while e <= 308 and 10.0**e < top:  # 10.0**309 raises OverflowError in Python
             vals.append(10.0**e)
             e += 1 if e < 38 else 30
         vals.append(top)
@@ -82,3 +88,241 @@ def ladder_rows(
     else:
         raise ValueError(f"pattern={pattern!r}: expected one of {PATTERNS}; try 'wrong'")
     return rows
+
+
+# --------------------------------------------------------------------------------------------
+# dtype facts: the grid of representable values (IEEE 754-2008 binary formats, and the bfloat16
+# layout of ml_dtypes: 8 exponent bits, 8 significand bits)
+
+
+def smallest_subnormal(dtype: str | np.dtype) -> float:
+    """The smallest positive value of ``dtype``: tiny · ε, the spacing of the subnormals (IEEE 754)."""
+    f = ml_dtypes.finfo(dtype_of(dtype))
+    return float(f.tiny) * float(f.eps)
+
+
+def smallest_normal(dtype: str | np.dtype) -> float:
+    """The smallest positive normal value of ``dtype`` (``tiny``): below it spacing is absolute."""
+    return float(ml_dtypes.finfo(dtype_of(dtype)).tiny)
+
+
+def next_below_one(dtype: str | np.dtype) -> float:
+    """The largest value of ``dtype`` below 1: 1 − ε/2 (the spacing halves just below a power of 2)."""
+    return 1.0 - float(ml_dtypes.finfo(dtype_of(dtype)).eps) / 2.0
+
+
+def round_to(x: np.ndarray | float, dtype: str | np.dtype) -> np.ndarray:
+    """``x`` rounded to the nearest value of ``dtype`` (ties to even), returned as float64.
+
+    Values beyond the dtype's range become ±inf, as a cast in a training loop would make them.
+    """
+    with np.errstate(over="ignore"):
+        return np.asarray(x, dtype=np.float64).astype(dtype_of(dtype)).astype(np.float64)
+
+
+def flush_subnormals(x: np.ndarray, dtype: str | np.dtype) -> np.ndarray:
+    """``x`` with the dtype's subnormal values replaced by (signed) 0, as a platform that flushes
+    denormals sees them (XLA on CPU does, for float32, bfloat16 and float64 arithmetic)."""
+    x = np.asarray(x, dtype=np.float64)
+    return np.where(np.abs(x) < smallest_normal(dtype), np.copysign(0.0, x), x)
+
+
+def has_subnormals(x: np.ndarray, dtype: str | np.dtype) -> np.ndarray:
+    """Per leading index: does ``x`` hold a nonzero value below the dtype's smallest normal?"""
+    a = np.abs(np.asarray(x, dtype=np.float64)).reshape(np.shape(x)[0], -1)
+    return np.any((a > 0) & (a < smallest_normal(dtype)), axis=1)
+
+
+def common_grid(x: np.ndarray | float, dtypes: Sequence[str]) -> np.ndarray:
+    """``x`` moved onto values exactly representable in every dtype of ``dtypes``.
+
+    Rounds through each dtype in turn until nothing changes (twice suffices for the formats in
+    :data:`~lossguard.tolerance.DTYPES`: a bfloat16 value inside float16's normal range has at
+    most 8 significant bits, which float16's 11 hold). Entries that still move (deep in
+    float16's subnormals) are flushed to 0, which every dtype holds. Callers keep ``x`` inside
+    the smallest range of ``dtypes``.
+
+    Example:
+        >>> float(common_grid(np.array(1.0 + 2.0**-10), ["float16", "bfloat16"]))
+        1.0
+    """
+    out = np.asarray(x, dtype=np.float64)
+    for _ in range(3):
+        prev = out
+        for d in dtypes:
+            out = round_to(out, d)
+        if np.array_equal(out, prev, equal_nan=True):
+            return out
+    stable = np.ones(out.shape, bool)
+    for d in dtypes:
+        stable &= round_to(out, d) == out
+    return np.where(stable, out, 0.0)
+
+
+def round_down(x: float, dtypes: Sequence[str]) -> float:
+    """The largest value ≤ ``x`` (≥ 0, finite) that every dtype of ``dtypes`` holds exactly.
+
+    Used for ladder rungs near a range end: float16's largest value 65504 is not a bfloat16
+    value (it would round up to 65536, beyond float16), so the common rung is 65280.
+
+    Example:
+        >>> round_down(65504.0, ["float16", "bfloat16"])
+        65280.0
+    """
+    out = float(x)
+    for _ in range(4):
+        prev = out
+        for d in dtypes:
+            dt = dtype_of(d)
+            with np.errstate(over="ignore"):
+                r = np.asarray(out).astype(dt)
+            if not np.isfinite(float(r)) or float(r) > out:
+                r = np.nextafter(r, np.asarray(0, dtype=dt))  # one step toward zero in that dtype
+            out = float(r)
+        if out == prev:
+            break
+    return out
+
+
+def ulp(x: np.ndarray | float, dtype: str | np.dtype) -> np.ndarray:
+    """The spacing of ``dtype`` at |x|: 2^⌊log2|x|⌋ · ε for normal |x|, tiny · ε below.
+
+    Shapes: elementwise, float64. Non-finite or beyond-range |x| get the spacing at the largest
+    finite value.
+
+    Example:
+        >>> float(ulp(1.0, "bfloat16")), float(ulp(3.0, "float16"))
+        (0.0078125, 0.001953125)
+    """
+    f = ml_dtypes.finfo(dtype_of(dtype))
+    a = np.abs(np.asarray(x, dtype=np.float64))
+    a = np.where(np.isfinite(a), np.minimum(a, float(f.max)), float(f.max))
+    a = np.maximum(a, float(f.tiny))  # below tiny the spacing is constant: tiny · ε (IEEE 754)
+    _, e = np.frexp(a)  # a = m · 2^e with m ∈ [0.5, 1), so ⌊log2 a⌋ = e − 1
+    return np.ldexp(float(f.eps), e - 1)
+
+
+# --------------------------------------------------------------------------------------------
+# ladders for every dtype
+
+
+def wide_magnitudes(dtype: str | np.dtype = "float64") -> np.ndarray:
+    """:func:`magnitudes` (0 … 1e4) continued sparsely to the dtype's largest finite value.
+
+    After 1e4 come 1e5, 1e8, 1e16, 1e38, 1e100, 1e300 (those the dtype holds) and the largest
+    finite value itself, so every dtype's ladder stays short (≤ 18 rungs) yet reaches its end.
+
+    Example:
+        >>> wide_magnitudes("float16")[-3:].tolist()
+        [1000.0, 10000.0, 65504.0]
+    """
+    top = largest_finite(dtype)
+    extra = [v for v in (1e5, 1e8, 1e16, 1e38, 1e100, 1e300) if v < top]
+    return np.asarray(list(magnitudes(dtype)) + extra + [top], dtype=np.float64)
+
+
+def profile_magnitudes(dtype: str | np.dtype = "float64") -> np.ndarray:
+    """A dense magnitude grid for precision profiles: 1e-3 … 1e5 by quarter decades, then by
+    decades to 1e38, then every ten decades, plus the largest finite value of every dtype of
+    :data:`~lossguard.tolerance.DTYPES` that ``dtype`` holds (where ranges end).
+
+    Example:
+        >>> float(profile_magnitudes("float16")[-1])
+        65504.0
+    """
+    from .tolerance import DTYPES
+
+    top = largest_finite(dtype)
+    grid = [10.0 ** (k / 4) for k in range(-12, 21)] + [10.0**k for k in range(6, 39)]
+    grid += [10.0**k for k in range(40, 309, 10)]
+    grid += [largest_finite(d) for d in DTYPES]
+    return np.unique(np.asarray([g for g in grid if g <= top], dtype=np.float64))
+
+
+def probability_edges(dtype: str | np.dtype) -> np.ndarray:
+    """Probabilities at and just inside the ends of [0, 1], as ``dtype`` holds them.
+
+    0, the smallest subnormal, the smallest normal, ε, 1/2, the largest value below 1, and 1:
+    the exact endpoints (where a log-loss is truly infinite if the target puts mass there) and
+    the nearest values a training run can actually produce.
+
+    Example:
+        >>> probability_edges("float16").tolist()[-2:]
+        [0.99951171875, 1.0]
+    """
+    eps = float(ml_dtypes.finfo(dtype_of(dtype)).eps)
+    vals = [0.0, smallest_subnormal(dtype), smallest_normal(dtype), eps, 0.5, next_below_one(dtype), 1.0]
+    return np.asarray(vals, dtype=np.float64)
+
+
+#: How far :func:`approach` moves an endpoint inward: three steps, each the square of the last,
+#: so a diverging limit (log, power) shows growing differences and a finite one shrinking ones.
+EDGE_STEPS = (2.0**-13, 2.0**-26, 2.0**-52)
+
+
+def approach(p: np.ndarray, step: float) -> np.ndarray:
+    """Probabilities with exact 0 moved to ``step`` and exact 1 to 1 − ``step`` (others kept)."""
+    p = np.asarray(p, dtype=np.float64)
+    return np.where(p == 0.0, step, np.where(p == 1.0, 1.0 - step, p))
+
+
+def probability_rows(q: float, labels: np.ndarray, n_classes: int, pattern: str,
+                     rng: np.random.Generator) -> np.ndarray:
+    """Probability rows (N, C) with the label's probability at an edge value ``q``.
+
+    - ``"label"``: p_label = q, the other classes share 1 − q equally (q = 0: a certain miss);
+    - ``"rest"``: p_label = 1 − q, one random other class holds q, the rest exact zeros.
+
+    Labels outside [0, C) are placed at class 0, as in :func:`ladder_rows`.
+    """
+    n = labels.shape[0]
+    lab = np.where((labels >= 0) & (labels < n_classes), labels, 0).astype(np.int64)
+    idx = np.arange(n)
+    if pattern == "label":
+        rows = np.full((n, n_classes), (1.0 - q) / max(n_classes - 1, 1))
+        rows[idx, lab] = q
+    elif pattern == "rest":
+        rows = np.zeros((n, n_classes))
+        other = (lab + 1 + rng.integers(0, max(n_classes - 1, 1), size=n)) % n_classes
+        rows[idx, lab] = 1.0 - q
+        rows[idx, other] = q
+    else:
+        raise ValueError(f"pattern={pattern!r}: expected 'label' or 'rest'; try 'label'")
+    return rows
+
+
+def sparse_simplex_rows(rng: np.random.Generator, n: int, n_classes: int) -> np.ndarray:
+    """Target rows (N, C) on the simplex with exact zeros: alternately one-hot and two-to-three
+    nonzero entries (never all classes), so that masks have zero-target classes to land on."""
+    rows = np.zeros((n, n_classes))
+    for i in range(n):
+        k = 1 if i % 2 == 0 else int(rng.integers(2, max(min(3, n_classes - 1), 2) + 1))
+        k = min(k, max(n_classes - 1, 1))
+        cls = rng.choice(n_classes, size=k, replace=False)
+        rows[i, cls] = rng.dirichlet(np.ones(k)) if k > 1 else 1.0
+    return rows
+
+
+def mask_non_targets(rng: np.random.Generator, targets: np.ndarray, n_classes: int, *,
+                     ignore_label: int | None = None) -> np.ndarray:
+    """Which entries of an (N, C) logit matrix to set to −inf: a boolean mask.
+
+    Never the label (integer targets; an ignored row keeps class 0); for distribution targets
+    (N, C) only classes whose target is exactly 0. Each row masks between one and all of its
+    eligible classes (so "every competitor masked" occurs); a row with none eligible is left.
+    """
+    t = np.asarray(targets)
+    if t.ndim == 1:
+        lab = np.where((t >= 0) & (t < n_classes), t, 0)
+        if ignore_label is not None:
+            lab = np.where(t == ignore_label, 0, lab)
+        eligible = np.arange(n_classes)[None, :] != lab[:, None]
+    else:
+        eligible = t == 0
+    mask = np.zeros(eligible.shape, bool)
+    for i in range(eligible.shape[0]):
+        cls = np.flatnonzero(eligible[i])
+        if cls.size:
+            k = int(rng.integers(1, cls.size + 1))
+            mask[i, rng.choice(cls, size=k, replace=False)] = True
+    return mask

@@ -93,17 +93,16 @@ def test_wrong_output_shape_is_one_line():
 
 
 def test_a_loss_that_raises_mid_battery_gives_an_error_verdict_not_a_traceback():
-    calls = {"n": 0}
-
     def flaky(z, y):
-        calls["n"] += 1
-        if calls["n"] > 3:  # fine while probed (two traces and one plain call), then raises
+        z = np.asarray(z, dtype=np.float64)
+        if np.max(np.abs(z)) > 50:  # fine on the probe's small logits, raises on the ladder
             raise RuntimeError("sensor cable unplugged")
-        return ce_numpy(np.asarray(z, dtype=np.float64), np.asarray(y))
+        return ce_numpy(z, np.asarray(y))
 
     result = run(declare(flaky, kind="categorical"), effort="quick", only=["finite"])
     finite = result.check("finite")
     assert finite.verdict == "error" and "sensor cable unplugged" in finite.summary
+    assert "\n" not in finite.summary
     assert result.exit_code == 1
 
 

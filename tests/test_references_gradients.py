@@ -322,3 +322,22 @@ def test_meta_naive_focal_gradient_is_rejected_at_saturation() -> None:
         want = [float(mpmath.diff(lambda v: mp_focal_binary(v, 1.0, g, None), mpmath.mpf(800)))]
     assert close(FB.per_example_grad(z, y, gamma=g, alpha=None), want, 1e-12, TINY)
     assert not close(naive, want, 1e-12, TINY)
+
+
+def test_jax_twins_keep_the_derivative_at_the_kinks_of_their_stable_forms():
+    """Regression: softplus written with max and |x| had autodiff 0 at x = 0; a label gathered
+    after the log of probabilities gave nan where an unused p_c = 0."""
+    import jax
+    import jax.numpy as jnp
+    from scipy.special import expit
+
+    from lossguard.references._stable import j_softplus
+    from lossguard.references.ce import ce_jax
+
+    with jax.enable_x64(True):
+        # d/dx softplus(x) = σ(x); σ(0) = 1/2 (scipy.special.expit)
+        assert float(jax.grad(j_softplus)(jnp.float64(0.0))) == expit(0.0)
+        p = jnp.array([[0.7, 0.3, 0.0]])
+        g = jax.grad(lambda q: ce_jax(q, jnp.array([0]), inputs="probabilities").sum())(p)
+        # ∂(−log p_0)/∂p = (−1/p_0, 0, 0) (common practice)
+        np.testing.assert_allclose(np.asarray(g), [[-1 / 0.7, 0.0, 0.0]], rtol=1e-15)

@@ -75,6 +75,8 @@ class Context:
     seed: int = 0
     effort: str = "default"
     _stacks: dict[tuple[str, Cell], CaseStack] = field(default_factory=dict)
+    #: replaces the shape menu when set (benchmarks measure growth with it); ``None``: the menu
+    cells_override: tuple[Cell, ...] | None = None
 
     def rng(self, purpose: str) -> np.random.Generator:
         """A generator seeded by (seed, purpose): each check draws its own, reproducibly."""
@@ -82,6 +84,8 @@ class Context:
 
     @property
     def cells(self) -> list[Cell]:
+        if self.cells_override:
+            return list(self.cells_override)
         return shape_menu(self.spec, self.effort)
 
     @property

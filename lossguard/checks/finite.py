@@ -1,107 +1,379 @@
-"""``finite``: value and gradient stay finite over the extreme-logit ladder.
+"""``finite``: value and gradient stay finite over extreme inputs, in every float dtype.
 
-Every ladder case (confidently right and wrong, ties, one huge logit, rows of mixed scale, at
-magnitudes from 0 to 1e4) and the random cases are evaluated in float32 and float64. A non-finite
-value or gradient is a failure wherever the true value is finite and representable in the dtype:
-an ``inf`` where the exact loss itself is infinite (a probability input of exactly 0 on the
-target class) is not a bug. The true value comes from the declared reference in float64 when
-there is one; otherwise logits losses are expected finite everywhere, and probability losses
-wherever no prediction is exactly 0 or 1.
+Notation and shapes: stacks of K cases of one menu shape (class axis last, see
+:mod:`lossguard.cases`). For each dtype of :data:`~lossguard.tolerance.DTYPES` the check builds
+one stack of :data:`STACK_SIZE` cases, rounded to that dtype:
+
+- the extreme-logit ladder of :func:`~lossguard.ladders.wide_magnitudes`: magnitudes 0, 1e-3 …
+  1e4 on to the dtype's largest finite value, in rows confidently right, confidently wrong, all
+  equal, with one huge logit, and of very different scales in one batch;
+- for probability inputs, the exact endpoints 0 and 1 and the values just inside them that the
+  dtype holds (:func:`~lossguard.ladders.probability_edges`);
+- targets hard and soft (binary), one-hot and with exact zeros (distribution), as drawn by
+  :func:`~lossguard.cases.draw_targets`; the battery's random cases fill the stack.
+
+A non-finite value (gradient) fails wherever the true value (gradient) is finite and
+representable in the dtype: an inf where the exact loss overflows is not a bug, an inf from an
+intermediate overflow is. The true value is decided by the first rule that applies:
+
+1. a declared reference, in float64 at the same rounded inputs; where float64 overflows too, the
+   reference evaluated in mpmath (:func:`lossguard.profile.mp_reference_stack`);
+2. below float64: the loss's own float64 value at the same inputs, when that is finite;
+3. probability inputs at an exact 0 or 1: the limit from inside, read from the loss's own
+   float64 values with the endpoint moved inward by 2^-13, 2^-26 and 2^-52: taken finite when
+   the differences do not grow (a log or a power diverges with growing differences);
+4. float64 itself: logits no larger than :data:`ASSUMED_FINITE_UP_TO`, or probabilities in
+   [tiny, 1), are assumed to have a finite loss (true of every classification loss we know in
+   logits — an exponential-type loss is the exception; declare a reference or skip).
+
+Otherwise there is no oracle: the case is not judged, and the count is reported.
+
+"Representable" means: the true value fits the dtype and, for a batch mean, so does the sum it
+divides, held in float32 for float16 and bfloat16 (the accumulator JAX uses) and in the dtype
+itself above that. A gradient is judged only where the value is (where the exact loss overflows,
+the chain rule multiplies by its overflowing factors). A case holding values subnormal in the
+dtype is judged both as given and with them flushed to zero, since XLA on CPU flushes denormals:
+it must be finite only where both readings say so.
 """
 
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..cases import CaseStack
+from ..cases import CaseStack, Cell, concat, draw_targets, ladder_stack
 from ..evaluate import NoGradient
-from ..ladders import largest_finite
+from ..ladders import EDGE_STEPS, approach, common_grid, flush_subnormals, has_subnormals, largest_finite, \
+    probability_edges, probability_rows, smallest_normal, wide_magnitudes
 from ..result import CheckResult, Example
-from ..tolerance import dtype_of
+from ..tolerance import DTYPES, op_count, rounding_allowance
 from ._base import Check, Context
 from ._compare import replay
 
-__all__ = ["CHECK", "expected_finite"]
+__all__ = ["CHECK", "STACK_SIZE", "ASSUMED_FINITE_UP_TO", "ACCUMULATOR", "Need", "expected_finite",
+           "finite_oracle", "check_finite", "extreme_stack", "fill_to", "on_grid", "own_float64",
+           "per_case_finite", "reduced_fits", "reference_batch"]
 
-DTYPES_CHECKED = ("float32", "float64")
+DTYPES_CHECKED = DTYPES
+#: Every stack of the stability checks has this many cases, so that they share compilations
+#: with each other and with the battery's standard stacks (the JAX adapter pads to a power of 2).
+STACK_SIZE = 128
+#: Rule 4: largest |logit| at which a loss in logits is assumed to have a finite float64 value.
+ASSUMED_FINITE_UP_TO = 1e4
+#: Where a batch mean's sum is expected to be held: float32 for the 16-bit formats (what JAX's
+#: reductions do; a float16 sum that overflows while the mean fits is a bug), else the dtype.
+ACCUMULATOR = {"float16": "float32", "bfloat16": "float32"}
+
+
+def fill_to(stack: CaseStack, filler: CaseStack, size: int = STACK_SIZE) -> CaseStack:
+    """``stack`` followed by cases of ``filler`` (cycled) up to ``size`` cases."""
+    short = size - len(stack)
+    if short <= 0:
+        return stack
+    return concat([stack, filler.take(np.arange(short) % len(filler))])
+
+
+def on_grid(stack: CaseStack, dtypes: list[str] | tuple[str, ...]) -> CaseStack:
+    """Predictions and float targets moved onto values every dtype of ``dtypes`` holds."""
+    y = stack.targets
+    if np.issubdtype(y.dtype, np.floating):
+        y = common_grid(y, dtypes)
+    return CaseStack(common_grid(stack.predictions, dtypes), y, stack.cell, list(stack.notes))
+
+
+def _edge_stack(ctx: Context, cell: Cell, dtype: str) -> CaseStack:
+    """Probability inputs at the exact endpoints and just inside them, in ``dtype``."""
+    spec, rng = ctx.spec, ctx.rng(f"finite edges {cell} {dtype}")
+    preds, targs, notes = [], [], []
+    for q in probability_edges(dtype):
+        for pattern in ("label", "rest"):
+            y = draw_targets(spec, cell, rng, 1, domain=ctx.domain)[0]
+            if cell.c is None:
+                p = np.full(cell.pred_shape(), q if pattern == "label" else 1.0 - q)
+            else:
+                labels = y if spec.kind == "categorical" else np.argmax(y, axis=-1)
+                p = probability_rows(q, labels, cell.c, pattern, rng)
+            preds.append(p)
+            targs.append(y)
+            notes.append(f"edge {pattern} p={q:.3g}")
+    return CaseStack(np.stack(preds), np.stack(targs), cell, notes)
+
+
+def extreme_stack(ctx: Context, cell: Cell, dtype: str) -> CaseStack:
+    """The ladder (and probability edges) for ``dtype``, filled to :data:`STACK_SIZE`, rounded."""
+    with np.errstate(over="ignore"):  # softmax of rows at the dtype's top: z − max z may be −inf
+        ladder = ladder_stack(ctx.spec, cell, ctx.rng(f"finite ladder {cell} {dtype}"),
+                              mags=wide_magnitudes(dtype), domain=ctx.domain)
+    parts = [ladder] + ([_edge_stack(ctx, cell, dtype)] if ctx.spec.inputs == "probabilities" else [])
+    return on_grid(fill_to(concat(parts), ctx.random_cases(cell)), [dtype])
+
+
+def per_case_finite(a: np.ndarray | None, k: int, top: float | None = None) -> np.ndarray:
+    """Per case: every entry finite (and, with ``top``, no larger in magnitude than ``top``)."""
+    if a is None:
+        return np.ones(k, bool)
+    flat = np.asarray(a, dtype=np.float64).reshape(k, -1)
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(flat) & (np.abs(flat) <= top if top is not None else True)
+    return np.all(ok, axis=1)
+
+
+def own_float64(ctx: Context, stack: CaseStack) -> tuple[np.ndarray, np.ndarray | None]:
+    """The loss's own float64 (values, gradients); gradients ``None`` without a gradient oracle."""
+    try:
+        return ctx.evaluator.value_and_grad(stack, "float64")
+    except NoGradient:
+        return ctx.evaluator.values(stack, "float64"), None
+
+
+@dataclass
+class Need:
+    """Per case: must the value / gradient be finite, and was the case judged at all."""
+
+    value: np.ndarray
+    grad: np.ndarray
+    judged: np.ndarray
+    rules: set[str] = field(default_factory=set)
+
+
+def reduced_fits(ctx: Context, v: np.ndarray, k: int, dtype: str, cell: Cell | None = None) -> np.ndarray:
+    """Per case: the true output fits ``dtype`` and, for a batch mean, so does the sum it divides.
+
+    The sum is held in float32 for float16 and bfloat16 inputs (the accumulator JAX and the
+    mixed-precision recipes use: common practice) and in the dtype itself above that.
+    """
+    ok = per_case_finite(v, k, largest_finite(dtype))
+    ev = ctx.evaluator
+    if ev.output == "scalar" and ev.reduction == "mean":
+        shape = (cell or ctx.cells[0]).pred_shape()
+        count = int(np.prod(shape)) if ctx.spec.kind == "binary" else shape[0]
+        acc = ACCUMULATOR.get(dtype, dtype)
+        with np.errstate(over="ignore", invalid="ignore"):
+            ok &= per_case_finite(np.asarray(v, dtype=np.float64).reshape(k) * count, k, largest_finite(acc))
+    return ok
+
+
+def reference_batch(ctx: Context, predictions: np.ndarray, targets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The declared reference's float64 (values, gradients) on a whole stack in one numpy call.
+
+    The same numbers as :func:`lossguard.checks.reference.reference_stack_values` (per example
+    ℓ_i and ∂ℓ_i/∂z_i with weights w_i — 0 for the ignore label, else the reference's example
+    weight — reduced per case as in :mod:`lossguard.references._base`), without a Python loop
+    over the K cases.
+    """
+    from ..references import get_reference, validate_params
+
+    spec, red = ctx.spec, ctx.evaluator.reduction
+    ref, k = get_reference(spec.reference or ""), predictions.shape[0]
+    binary = spec.kind == "binary"
+    z = predictions.reshape(k, -1) if binary else predictions.reshape((-1,) + predictions.shape[2:])
+    y = targets.reshape(k, -1) if binary else targets.reshape((-1,) + targets.shape[2:])
+    prm = validate_params(ref, spec.params, None if binary else predictions.shape[-1])
+    ignored = np.zeros(y.shape if binary else y.shape[:1], bool)
+    if spec.kind == "categorical" and spec.ignore_label is not None:
+        ignored = y == spec.ignore_label
+        y = np.where(ignored, 0, y)
+    with np.errstate(all="ignore"):
+        ell = ref.per_example(z, y, inputs=spec.inputs, **prm).reshape(k, -1)
+        grad = ref.per_example_grad(z, y, inputs=spec.inputs, **prm).reshape(k, ell.shape[1], -1)
+        base = ref.example_weights(y, **prm) if ref.example_weights is not None and not binary else 1.0
+        w = np.where(ignored, 0.0, base).reshape(k, -1) * np.ones_like(ell)
+        wl = np.where(w != 0, w * ell, 0.0)  # ignored rows contribute exactly 0, even if ℓ is nan
+        scale = w / np.sum(w, axis=1, keepdims=True) if red == "mean" else w
+        g = np.where(scale[..., None] != 0, scale[..., None] * grad, 0.0).reshape(predictions.shape)
+        total = np.sum(wl, axis=1)  # may overflow at the top of the range, as the reference's does
+        value = total / np.sum(w, axis=1) if red == "mean" else total
+    if red == "none":
+        return wl.reshape(targets.shape if binary else targets.shape[:2]), g
+    return value, g
+
+
+def _reference_need(ctx: Context, stack: CaseStack, dtype: str) -> Need:
+    k, top = len(stack), largest_finite(dtype)
+    with np.errstate(all="ignore"):
+        v, g = reference_batch(ctx, stack.predictions, stack.targets)
+    rules = {f"rule 1: reference {ctx.spec.reference!r} in float64"}
+    over = ~per_case_finite(v, k)
+    if over.any():
+        from ..profile import mp_available, mp_reference_stack
+
+        if mp_available():  # float64 overflowed too: ask mpmath whether the true value fits
+            sub = stack.take(np.flatnonzero(over))
+            mv, _, mg, _ = mp_reference_stack(ctx.spec, sub.predictions, sub.targets,
+                                              reduction=ctx.evaluator.reduction)
+            v, g = v.copy(), g.copy()
+            v[over], g[over] = mv, mg
+            rules.add("rule 1: mpmath where float64 overflowed")
+    return Need(reduced_fits(ctx, v, k, dtype, stack.cell), per_case_finite(g, k, top), np.ones(k, bool), rules)
+
+
+def _limit_need(ctx: Context, stack: CaseStack, idx: np.ndarray, dtype: str) -> tuple[np.ndarray, np.ndarray]:
+    """Rule 3 for the cases ``idx``: (value limit finite and fits, gradient limit finite and fits)."""
+    sub = stack.take(idx)
+    moved = [sub.with_predictions(approach(sub.predictions, s)) for s in EDGE_STEPS]
+    both = fill_to(concat(moved), moved[0])
+    v, g = own_float64(ctx, both)
+    m, top = len(idx), largest_finite(dtype)
+    n = op_count(stack.cell.n, stack.cell.c or stack.cell.d or 1)
+
+    def converges(a: np.ndarray | None) -> np.ndarray:
+        if a is None:
+            return np.zeros(m, bool)
+        a1, a2, a3 = (a[i * m:(i + 1) * m].reshape(m, -1) for i in range(3))
+        tol = rounding_allowance(np.abs(a3).max(axis=1), np.ones(m), dtype="float64", n_ops=n).atol
+        with np.errstate(invalid="ignore"):
+            # a finite limit: successive differences shrink (|a3 − a2| ≤ |a2 − a1| up to rounding)
+            shrink = np.abs(a3 - a2).max(axis=1) <= np.abs(a2 - a1).max(axis=1) + tol
+        return shrink & per_case_finite(a3, m)
+
+    return converges(v) & reduced_fits(ctx, v[2 * m:3 * m], m, dtype, stack.cell), converges(g) & per_case_finite(
+        None if g is None else g[2 * m:3 * m], m, top)
+
+
+def finite_oracle(ctx: Context, stack: CaseStack, dtype: str,
+                  own: tuple[np.ndarray, np.ndarray | None] | None = None) -> Need:
+    """Which cases must come out finite in ``dtype`` (rules 1–4 of the module docstring).
+
+    A case holding values subnormal in ``dtype`` is judged twice, as given and with them flushed
+    to zero (XLA on CPU flushes denormals), and must be finite only where both readings say so.
+
+    Args:
+        ctx: the battery context. stack: cases already rounded to ``dtype``.
+        dtype: the dtype the loss is evaluated in.
+        own: the loss's own float64 (values, gradients) on ``stack``, if already computed.
+    """
+    need = _oracle(ctx, stack, dtype, own)
+    sub = has_subnormals(stack.predictions, dtype)
+    if np.issubdtype(stack.targets.dtype, np.floating):
+        sub |= has_subnormals(stack.targets, dtype)
+    if sub.any():
+        idx = np.flatnonzero(sub)
+        part = stack.take(idx)
+        y = part.targets
+        if np.issubdtype(y.dtype, np.floating):
+            y = flush_subnormals(y, dtype)
+        flushed = _oracle(ctx, fill_to(CaseStack(flush_subnormals(part.predictions, dtype), y, part.cell,
+                                                 part.notes), part), dtype, None)
+        need.value[idx] &= flushed.value[:idx.size]
+        need.grad[idx] &= flushed.grad[:idx.size]
+        need.judged[idx] &= flushed.judged[:idx.size]
+        need.rules |= flushed.rules | {"subnormal inputs judged as given and flushed to zero"}
+    need.grad &= need.value  # where the exact loss overflows, chain-rule factors overflow with it
+    return need
+
+
+def _oracle(ctx: Context, stack: CaseStack, dtype: str,
+            own: tuple[np.ndarray, np.ndarray | None] | None) -> Need:
+    k, top, spec = len(stack), largest_finite(dtype), ctx.spec
+    if spec.reference is not None:
+        return _reference_need(ctx, stack, dtype)
+    need = Need(np.zeros(k, bool), np.zeros(k, bool), np.zeros(k, bool))
+    if dtype != "float64":
+        ov, og = own if own is not None else own_float64(ctx, stack)
+        fin = per_case_finite(ov, k)
+        g_fin = per_case_finite(og, k) if og is not None else np.zeros(k, bool)
+        need.value = fin & reduced_fits(ctx, ov, k, dtype, stack.cell)
+        need.grad = fin & g_fin & per_case_finite(og, k, top)
+        need.judged = fin
+        need.rules.add("rule 2: the loss's own float64 value")
+    z = stack.predictions.reshape(k, -1)
+    if spec.inputs == "probabilities":
+        edge = np.any((z == 0.0) | (z == 1.0), axis=1) & ~need.judged
+        if edge.any():
+            idx = np.flatnonzero(edge)
+            need.value[idx], need.grad[idx] = _limit_need(ctx, stack, idx, dtype)
+            need.judged[idx] = True
+            need.rules.add("rule 3: the limit from inside at exact 0 or 1")
+    if dtype == "float64":
+        if spec.inputs == "logits":
+            assumed = np.max(np.abs(z), axis=1) <= ASSUMED_FINITE_UP_TO
+        else:
+            assumed = np.all((z >= smallest_normal("float64")) & (z < 1.0), axis=1)
+        assumed &= ~need.judged
+        need.value |= assumed
+        need.grad |= assumed & ctx.evaluator.has_gradient
+        need.judged |= assumed
+        if assumed.any():
+            need.rules.add(f"rule 4: assumed finite (no reference; |z| <= {ASSUMED_FINITE_UP_TO:g} or p in [tiny, 1))")
+    return need
 
 
 def expected_finite(ctx: Context, stack: CaseStack, dtype: str) -> tuple[np.ndarray, np.ndarray]:
-    """Per case: (true value finite and representable, true gradient finite and representable)."""
-    k = len(stack)
-    top = largest_finite(dtype)
-    z = stack.predictions.astype(dtype_of(dtype)).astype(np.float64)
-    if ctx.spec.reference is not None:
-        from .reference import reference_stack_values
+    """Per case: (true value finite and representable, true gradient finite and representable).
 
-        with np.errstate(all="ignore"):
-            v, g = reference_stack_values(ctx, z, stack.targets)
-        v_ok = np.all((np.abs(v) <= top).reshape(k, -1), axis=1)
-        g_ok = np.all((np.abs(g) <= top).reshape(k, -1), axis=1)
-        return v_ok, g_ok
-    if ctx.spec.inputs == "probabilities":
-        edge = np.any(((z == 0.0) | (z == 1.0)).reshape(k, -1), axis=1)
-        return ~edge, ~edge
-    return np.ones(k, bool), np.ones(k, bool)
+    ``stack`` is rounded to ``dtype`` first; unjudged cases come back False (nothing required).
+    """
+    need = finite_oracle(ctx, on_grid(stack, [dtype]), dtype)
+    return need.value, need.grad
 
 
-def _run(ctx: Context) -> CheckResult:
+def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> CheckResult:
+    """The check on the given dtypes (the battery uses all four; tests may name one)."""
     t0 = time.perf_counter()
     spec, ev = ctx.spec, ctx.evaluator
-    total = failed = 0
-    worst: list[Example] = []
-    exempt = 0
-    saw_grad = False
-    for dtype in DTYPES_CHECKED:
-        for cell in ctx.cells:
-            stack = ctx.standard_cases(cell)
+    total = failed = unjudged = exempt = 0
+    per_dtype: dict[str, int] = {}
+    found: dict[str, list[Example]] = {}
+    rules: set[str] = set()
+    saw_grad = ev.has_gradient
+    for cell in ctx.cells:
+        for dtype in dtypes:
+            stack = extreme_stack(ctx, cell, dtype)
             try:
                 vals, grads = ev.value_and_grad(stack, dtype)
             except NoGradient:
-                vals, grads = ev.values(stack, dtype), None
-            v_ok, g_ok = expected_finite(ctx, stack, dtype)
+                vals, grads, saw_grad = ev.values(stack, dtype), None, False
             k = len(stack)
-            v_fin = np.all(np.isfinite(vals.reshape(k, -1)), axis=1)
-            bad_v = v_ok & ~v_fin
-            bad = bad_v.copy()
-            if grads is not None:
-                saw_grad = True
-                g_fin = np.all(np.isfinite(grads.reshape(k, -1)), axis=1)
-                bad |= g_ok & ~g_fin
-            exempt += int(np.sum(~v_ok))
+            need = finite_oracle(ctx, stack, dtype)
+            rules |= need.rules
+            bad_v = need.value & ~per_case_finite(vals, k)
+            bad = bad_v | (need.grad & ~per_case_finite(grads, k))
             total += k
             failed += int(bad.sum())
-            for i in np.flatnonzero(bad)[:2]:
+            unjudged += int((~need.judged).sum())
+            exempt += int((need.judged & ~need.value).sum())
+            per_dtype[dtype] = per_dtype.get(dtype, 0) + int(bad.sum())
+            for i in np.flatnonzero(bad)[:1]:
                 which = "value" if bad_v[i] else "gradient"
-                worst.append(Example(
-                    what=f"{which} in {dtype}",
-                    predictions=stack.predictions[i], targets=stack.targets[i],
+                found.setdefault(dtype, []).append(Example(
+                    what=f"{which} in {dtype}", predictions=stack.predictions[i], targets=stack.targets[i],
                     got=vals[i] if which == "value" else grads[i],  # type: ignore[index]
-                    expected="finite (the true value is finite and representable in " + dtype + ")",
+                    expected=f"finite (the true {which} is finite and representable in {dtype})",
                     abs_err=float("inf"), note=stack.note(int(i)),
-                    replay=replay(spec, stack.predictions[i], stack.targets[i], dtype),
-                ))
-    worst.sort(key=lambda e: 0 if "float64" in e.what else 1)
-    verdict = "fail" if failed else "pass"
-    summary = (f"non-finite value or gradient on {failed} of {total} cases where the true value is finite"
-               if failed else f"finite {'value and gradient' if saw_grad else 'value (no gradient oracle)'}"
-               f" on all {total} cases (float32, float64)")
+                    replay=replay(spec, stack.predictions[i], stack.targets[i], dtype)))
+    order = ("float64", "float32", "bfloat16", "float16")
+    worst = [e for d in order for e in found.get(d, [])]
+    what = "value and gradient" if saw_grad else "value (no gradient oracle)"
+    if failed:
+        counts = ", ".join(f"{d} {n}" for d, n in per_dtype.items() if n)
+        first = worst[0]
+        summary = (f"non-finite {what} on {failed} of {total} cases where the true value is finite and "
+                   f"representable ({counts}); first: {first.what} at {first.note}")
+    else:
+        summary = f"finite {what} on all {total - unjudged} judged cases ({', '.join(dtypes)})"
+    if unjudged:
+        summary += f"; {unjudged} cases had no oracle (declare a reference to judge them)"
     return CheckResult(
-        name="finite", verdict=verdict, summary=summary, cases=total, failed=failed,
-        allowance="exact: finite wherever the true value is finite and representable",
-        worst=worst[:3],
+        name="finite", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
+        allowance="exact: finite wherever the true value is finite and representable; " + "; ".join(sorted(rules)),
+        worst=worst[:4],
         hint=("an intermediate overflowed or a log met 0: use log-sum-exp with max subtraction, "
               "log_softmax, log σ(x) = −softplus(−x), and where-guards that keep both branches finite"),
-        details={"cases_where_true_value_not_representable": exempt},
+        details={"failed_per_dtype": per_dtype, "cases_without_oracle": unjudged,
+                 "cases_where_true_value_not_representable": exempt},
         seconds=time.perf_counter() - t0,
     )
 
 
+def _run(ctx: Context) -> CheckResult:
+    return check_finite(ctx)
+
+
 CHECK = Check(
     name="finite",
-    summary="value and gradient finite over an extreme-logit ladder wherever the true value is",
+    summary="value and gradient finite over extreme logits and probabilities, in every float dtype",
     run=_run,
     skip_hint="never legitimately skipped for a loss used in training",
     order=20,

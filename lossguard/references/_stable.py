@@ -309,8 +309,9 @@ def pow_from_log(gamma: float, logx: ArrayLike) -> np.ndarray:
 
 def j_softplus(x: jax.Array) -> jax.Array:
     """JAX twin of :func:`softplus` (same identity; differentiable)."""
-    # log(1 + eˣ) = max(x, 0) + log1p(e^(−|x|))
-    return jnp.maximum(x, 0.0) + jnp.log1p(jnp.exp(-jnp.abs(x)))
+    # log(1 + eˣ) = logaddexp(x, 0); written with max and |x| its autodiff would give 0, not
+    # σ(0) = 1/2, at x = 0 (the subgradients of max and |·| at 0 do not combine to the derivative)
+    return jnp.logaddexp(x, 0.0)
 
 
 def j_log_sigmoid(x: jax.Array) -> jax.Array:
@@ -333,8 +334,13 @@ def j_take_label(x: jax.Array, y: jax.Array) -> jax.Array:
 def j_log1m_softmax_at(ls: jax.Array, y: jax.Array) -> jax.Array:
     """JAX twin of :func:`log1m_softmax_at`."""
     mask = jnp.asarray(y)[..., None] == jnp.arange(ls.shape[-1])
+    others = jnp.where(mask, -jnp.inf, ls)
+    alive = jnp.any(others > -jnp.inf, axis=-1)
+    # double-where: a row whose competitors are all −inf gets finite stand-ins, so the unused
+    # branch's derivative stays finite; its value is log(1 − p_y) = log 0 = −inf
+    safe = jnp.where(alive[..., None], others, 0.0)
     # 1 − p_y = Σ_{c≠y} p_c  ⇒  log(1 − p_y) = logsumexp_{c≠y} log p_c
-    return jax.nn.logsumexp(jnp.where(mask, -jnp.inf, ls), axis=-1)
+    return jnp.where(alive, jax.nn.logsumexp(safe, axis=-1), -jnp.inf)
 
 
 def j_xlogy(x: jax.Array, y: jax.Array) -> jax.Array:

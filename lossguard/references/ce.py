@@ -173,12 +173,12 @@ def ce_jax(z: jax.Array, y: jax.Array, inputs: str = "logits", weight: Any = Non
         0.693147
     """
     z = jnp.asarray(z)
-    if inputs == "probabilities":
-        ls = jnp.log(z)
-    else:
-        ls = j_log_softmax(z)
     if jnp.ndim(y) == jnp.ndim(z) - 1:
-        return -j_take_label(ls, y)
+        if inputs == "probabilities":
+            # gather p_y before the log: log of an unused p_c = 0 would put 0·(1/0) = nan in the gradient
+            return -jnp.log(j_take_label(z, y))
+        return -j_take_label(j_log_softmax(z), y)
+    ls = jnp.log(z) if inputs == "probabilities" else j_log_softmax(z)
     w = jnp.ones(z.shape[-1]) if weight is None else jnp.asarray(weight, dtype=z.dtype)
     safe = jnp.where(y == 0, 0.0, ls)  # double-where: 0 · log 0 = 0 with a finite derivative
     return -jnp.sum(jnp.where(y == 0, 0.0, w * y * safe), axis=-1)
@@ -290,7 +290,8 @@ def smoothed_jax(
     """
     ls = j_log_softmax(jnp.asarray(z))
     c = ls.shape[-1]
-    return (1.0 - epsilon) * -j_take_label(ls, y) + (epsilon / c) * -jnp.sum(ls, axis=-1)
+    # scale each term before summing: Σ_c ls_c can overflow where (ε/C)·Σ_c ls_c fits
+    return (1.0 - epsilon) * -j_take_label(ls, y) - jnp.sum((epsilon / c) * ls, axis=-1)
 
 
 CATEGORICAL_CE = Reference(

@@ -1,0 +1,187 @@
+"""``masking``: −inf logits on classes that cannot occur leave value and gradient intact.
+
+Notation and shapes: logits (K, N, C), class axis last; a mask (K, N, C) marks the entries set
+to −inf. Categorical targets: never the label (an ignored row keeps class 0); distribution
+targets: only classes whose target is exactly 0 (:func:`~lossguard.ladders.mask_non_targets`).
+Each row masks between one and all of its eligible classes, on logits of random scale.
+
+Wherever the true value with the mask is finite, the computed value and gradient must be finite
+and the gradient at every masked entry exactly 0 (a finite limit as z_c → −inf forces
+∂ℓ/∂z_c → 0; softmax gives p_c = e^(−inf) = 0 exactly). The true value comes from the declared
+reference in float64 at the masked inputs or, without one, from the limit: the loss's own
+float64 values with −inf replaced by min(z) − D for D = 1e2, 1e4, 1e8 are taken to converge when
+their differences do not grow. A loss that puts target mass on a masked class (label smoothing)
+has an infinite true value there; such cases are not judged. A fully masked row (every class
+−inf, the label included) has no meaningful value: what the loss does with it is reported, not
+failed. In float32 a few cases are also evaluated by plain calls without jit, because a compiler
+may rewrite onehot · log p into a gather and hide the 0 · (−inf) a training loop would meet.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from ..cases import CaseStack, Cell, concat
+from ..evaluate import NoGradient
+from ..ladders import mask_non_targets, sparse_simplex_rows
+from ..result import CheckResult, Example
+from ..tolerance import DTYPES, op_count, rounding_allowance
+from ._base import Check, Context, only
+from ._compare import replay
+from .finite import STACK_SIZE, fill_to, own_float64, per_case_finite, reduced_fits, reference_batch
+
+__all__ = ["CHECK", "check_masking", "masked_cases", "DEPTHS"]
+
+#: How far below the row's smallest finite logit the finite stand-ins of −inf sit (limit oracle).
+DEPTHS = (1e2, 1e4, 1e8)
+MASKED_CASES = 40
+#: Masked cases also evaluated by plain (not jitted) calls in float32: one call per case.
+EAGER_CASES = 8
+
+
+def masked_cases(ctx: Context, cell: Cell) -> tuple[CaseStack, np.ndarray]:
+    """(stack, mask): :data:`MASKED_CASES` masked cases, the last one with a fully masked row 0."""
+    rng = ctx.rng(f"masking {cell}")
+    base = ctx.random_cases(cell)
+    take = base.take(np.arange(MASKED_CASES) % len(base))
+    z = take.predictions.copy()
+    z[1::2] *= 100.0  # every other case at a confident scale, so masks meet saturated rows
+    y = take.targets.copy()
+    if ctx.spec.kind == "distribution":
+        y = np.stack([sparse_simplex_rows(rng, cell.n, cell.c or 2) for _ in range(MASKED_CASES)])
+    mask = np.stack([mask_non_targets(rng, y[k], cell.c or 2, ignore_label=ctx.spec.ignore_label)
+                     for k in range(MASKED_CASES)])
+    mask[-1, 0, :] = True  # the report-only case: row 0 loses every class
+    z = np.where(mask, -np.inf, z)
+    scale = np.max(np.abs(np.where(mask, 0.0, z)).reshape(MASKED_CASES, -1), axis=1)
+    notes = [f"masked {int(mask[k].sum())} of {mask[k].size} logits, scale {scale[k]:.3g}"
+             for k in range(MASKED_CASES)]
+    notes[-1] = "row 0 fully masked (report only)"
+    return CaseStack(z, y, cell, notes), mask
+
+
+def _limit_oracle(ctx: Context, stack: CaseStack, mask: np.ndarray) -> np.ndarray:
+    """Per case: does the loss converge as the masked logits go to −inf (no reference)."""
+    k = len(stack)
+    z = stack.predictions
+    low = np.min(np.where(mask, np.inf, z).reshape(k, -1), axis=1).reshape((k,) + (1,) * (z.ndim - 1))
+    deep = concat([stack.with_predictions(np.where(mask, low - d, z)) for d in DEPTHS])
+    v, _ = own_float64(ctx, fill_to(deep, deep))
+    v1, v2, v3 = (v[i * k:(i + 1) * k].reshape(k, -1) for i in range(3))
+    n = op_count(stack.cell.n, stack.cell.c or 1)
+    tol = rounding_allowance(np.abs(v3).max(axis=1), np.ones(k), dtype="float64", n_ops=n).atol
+    with np.errstate(invalid="ignore"):
+        # a finite limit: successive differences shrink (|v3 − v2| ≤ |v2 − v1| up to rounding)
+        conv = np.abs(v3 - v2).max(axis=1) <= np.abs(v2 - v1).max(axis=1) + tol
+    return conv & per_case_finite(v3, k)
+
+
+def _true_finite(ctx: Context, stack: CaseStack, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, str]:
+    """(true value finite per case, its float64 estimate, which oracle)."""
+    if ctx.spec.reference is not None:
+        with np.errstate(all="ignore"):
+            v, _ = reference_batch(ctx, stack.predictions, stack.targets)
+        return per_case_finite(v, len(stack)), v, f"reference {ctx.spec.reference!r} in float64"
+    limit = "the limit z_c → −inf of the loss's own float64 value"
+    return _limit_oracle(ctx, stack, mask), np.zeros(len(stack)), limit
+
+
+def _describe(a: np.ndarray) -> str:
+    a = np.asarray(a, dtype=np.float64)
+    if np.all(np.isfinite(a)):
+        return "finite"
+    return "nan" if np.any(np.isnan(a)) else "inf"
+
+
+def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckResult:
+    """The check on the given dtypes (default: float32 and float64 at quick effort, else all)."""
+    t0 = time.perf_counter()
+    spec, ev = ctx.spec, ctx.evaluator
+    dtypes = dtypes or (("float32", "float64") if ctx.effort == "quick" else DTYPES)
+    total = failed = skipped = 0
+    worst: list[Example] = []
+    oracle_name = ""
+    full_row: dict[str, str] = {}
+    for cell in ctx.cells:
+        stack, mask = masked_cases(ctx, cell)
+        judged = np.arange(len(stack)) < len(stack) - 1  # the fully masked case is report-only
+        fin, ref_v, oracle_name = _true_finite(ctx, stack, mask)
+        padded = fill_to(stack, ctx.random_cases(cell), STACK_SIZE)
+        for dtype in dtypes:
+            try:
+                vals, grads = ev.value_and_grad(padded, dtype)
+            except NoGradient:
+                vals, grads = ev.values(padded, dtype), None
+            k = len(stack)
+            vals, grads = vals[:k], None if grads is None else grads[:k]
+            need = judged & fin & (reduced_fits(ctx, ref_v, k, dtype, cell) if spec.reference else True)
+            bad_v = need & ~per_case_finite(vals, k)
+            eager = ""
+            if dtype == "float32" and not bad_v.any() and need.any():
+                # compilers may rewrite onehot · log p into a gather and hide a 0 · (−inf); a plain
+                # call, as a training loop without jit makes it, does not
+                idx = np.flatnonzero(need)[:EAGER_CASES]
+                plain = ev.values(stack.take(idx), dtype, eager=True)
+                bad_v[idx] = ~per_case_finite(plain, idx.size)
+                if bad_v.any():
+                    vals = vals.copy()
+                    vals[idx] = plain.reshape(vals[idx].shape)
+                    eager = " (plain call, no jit)"
+            bad_g = need & ~per_case_finite(grads, k) if grads is not None else np.zeros(k, bool)
+            leak = np.zeros(k, bool)
+            if grads is not None:
+                with np.errstate(invalid="ignore"):
+                    leak = need & np.any((np.where(mask, grads, 0.0) != 0).reshape(k, -1), axis=1)
+            bad = bad_v | bad_g | leak
+            total += int(judged.sum())
+            skipped += int((judged & ~fin).sum())
+            failed += int(bad.sum())
+            for i in np.flatnonzero(bad)[:1]:
+                what = "value" if bad_v[i] else "gradient" if bad_g[i] else "gradient at a masked class"
+                what += f" in {dtype}"
+                what += eager if bad_v[i] else ""
+                got = vals[i] if bad_v[i] else grads[i]  # type: ignore[index]
+                exp = "finite" if (bad_v[i] or bad_g[i]) else "exactly 0 at every masked (−inf) entry"
+                worst.append(Example(what=what, predictions=stack.predictions[i], targets=stack.targets[i],
+                                     got=got, expected=exp, abs_err=float("inf"), note=stack.note(int(i)),
+                                     replay=replay(spec, stack.predictions[i], stack.targets[i], dtype)))
+            if dtype == "float64" or not full_row:
+                full_row = {"value": _describe(vals[-1]),
+                            "gradient": _describe(grads[-1]) if grads is not None else "n/a"}
+    full = (f"a fully masked row gives value {full_row.get('value')}, gradient {full_row.get('gradient')} "
+            "(reported, not failed)")
+    if failed:
+        summary = (f"masked logits broke value or gradient on {failed} of {total} cases; first: {worst[0].what} "
+                   f"[{worst[0].note}]; {full}")
+    else:
+        what = "value and gradient finite, masked gradients exactly 0," if ev.has_gradient else \
+            "value finite (no gradient oracle)"
+        summary = f"{what} on {total - skipped} judged cases ({', '.join(dtypes)}); {full}"
+    if skipped:
+        summary += f"; {skipped} cases not judged: the true value is infinite (target mass on a masked class)"
+    return CheckResult(
+        name="masking", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
+        allowance=(f"exact: finite where the true value is (oracle: {oracle_name}); "
+                   "gradient exactly 0 at masked entries"),
+        worst=worst[:3],
+        hint=("a −inf logit met 0 · (−inf) = nan: gather the label's log-probability instead of multiplying "
+              "by a one-hot, and where-guard terms of classes with zero target before the product"),
+        details={"fully_masked_row": full_row, "cases_not_judged": skipped, "dtypes": list(dtypes)},
+        seconds=time.perf_counter() - t0,
+    )
+
+
+def _run(ctx: Context) -> CheckResult:
+    return check_masking(ctx)
+
+
+CHECK = Check(
+    name="masking",
+    summary="−inf logits on impossible classes: value and gradient finite, masked gradients exactly 0",
+    run=_run,
+    applies=only("categorical", "distribution", inputs="logits"),
+    skip_hint="skip if the loss is never given masked (−inf) logits",
+    order=30,
+)
