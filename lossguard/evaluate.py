@@ -165,6 +165,18 @@ class Evaluator:
         except NotImplementedError as exc:
             raise NoGradient(str(exc)) from None
 
+    def hvp(
+        self, stack: CaseStack, directions: np.ndarray, dtype: str = "float64",
+        cotangent: np.ndarray | None = None,
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """(gradient, Hessian-vector product along ``directions``) of ⟨cotangent, output⟩ per
+        case, by autodiff (reverse over reverse); :class:`NoGradient` without autodiff."""
+        if not self.has_autodiff or not hasattr(self.adapter, "hvp"):
+            raise NoGradient(f"{self.spec.name}: Hessian-vector products need a JAX-traceable loss")
+        if cotangent is None:
+            cotangent = np.ones((len(stack),) + self.cotangent_shape(stack))
+        return self.adapter.hvp(stack.predictions, stack.targets, directions, dtype, cotangent)
+
     def computed_dtype(self, dtype: str) -> str:
         """The precision the loss actually computed in for ``dtype`` inputs (the lower of the
         two): a loss that casts to float32 is judged by float32's rounding."""

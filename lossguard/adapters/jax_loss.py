@@ -76,6 +76,21 @@ class JaxAdapter:
             def one(z: Any, y: Any, v: Any) -> Any:
                 return jax.jvp(lambda zz: f(zz, y), (z,), (v,))
 
+        elif op == "hvp":
+
+            def one(z: Any, y: Any, cot: Any, v: Any) -> Any:
+                def scalar(zz: Any) -> Any:
+                    out = f(zz, y)
+                    return jnp.sum(out * cot.astype(out.dtype))
+
+                def slope(zz: Any) -> Any:
+                    g = jax.grad(scalar)(zz)
+                    return jnp.sum(g * v.astype(g.dtype)), g
+
+                # reverse over reverse: ∇(∇φ · v) = H v (works for custom_vjp losses too)
+                hv, g = jax.grad(slope, has_aux=True)(z)
+                return g, hv
+
         else:  # pragma: no cover - internal
             raise ValueError(op)
         return jax.jit(jax.vmap(one)) if self.vectorised else jax.jit(one)
@@ -158,6 +173,16 @@ class JaxAdapter:
             return self._run("jvp", [z, y, v], dtype, [True, self._targets_float(y), True])
         except Exception as exc:
             raise call_failed(exc, "a forward-mode derivative", z.shape[1:], dtype) from None
+
+    def hvp(
+        self, z: np.ndarray, y: np.ndarray, v: np.ndarray, dtype: str, cotangent: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """(gradient, Hessian-vector product H v) of ⟨cotangent, output⟩ per case, by reverse
+        mode over reverse mode (``cotangent`` as in :meth:`value_and_grad`)."""
+        try:
+            return self._run("hvp", [z, y, cotangent, v], dtype, [True, self._targets_float(y), True, True])
+        except Exception as exc:
+            raise call_failed(exc, "a Hessian-vector product", z.shape[1:], dtype) from None
 
 
 def probe(loss: Callable[..., Any], params: Mapping[str, Any], z: np.ndarray, y: np.ndarray) -> tuple[str, tuple[int, ...]] | None:

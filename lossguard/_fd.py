@@ -1,0 +1,360 @@
+"""Finite differences for checking gradients: Richardson tables with their own error estimate.
+
+Notation and shapes: a stack of K cases with predictions ``z`` of shape (K, *S) (class axis
+last); D directions per case ``v`` of shape (K, D, *S); J step levels h_j = h0 · 2^(−j),
+j = 0 … J−1, one h0 per (case, direction). The scalar studied is φ(t) = f(z + t v); its values
+at the perturbed points come in arrays (J, *B) where B is any batch shape, usually (K, D).
+
+Formulas:
+
+    central    C(h) = (φ(h) − φ(−h)) / 2h = φ'(0) + c₂h² + c₄h⁴ + …
+    one-sided  F(h) = (φ(h) − φ(0)) / h,  B(h) = (φ(0) − φ(−h)) / h = φ'(0) ± c₁h + c₂h² + …
+
+Richardson extrapolation with step ratio 2 removes one power at a time:
+R[i, j] = R[i, j−1] + (R[i, j−1] − R[i−1, j−1]) / (2^(p·j) − 1), with p = 2 for the central
+table (only even powers) and p = 1 for the one-sided tables. Every entry is a fixed linear
+combination Σ_l a_l · D(h_l) of the raw differences, so a bound ε on the rounding error of each
+φ value propagates exactly: |rounding of R| ≤ Σ_l |a_l| · b_l with b_l = ε/h_l (central) or
+2ε/h_l (one-sided). The truncation error of an entry is estimated from the table itself, as the
+larger of its distances to the two entries it was built from (Ridders 1982); the entry with the
+smallest estimate + rounding bound is reported (the first row, which has no finer neighbour to be
+judged by, never is).
+
+Kinks: where φ is not differentiable at 0 the one-sided tables disagree by more than their
+error estimates; :func:`directional` flags such points so that a check can judge them by the
+interval between the two one-sided derivatives instead of reporting a false failure. A kink
+*near* 0, inside the step range, breaks the power law of the table (:func:`consistent`); such
+points are neither smooth nor kinks and are left unjudged rather than misjudged.
+
+Exact steps: :func:`snap` rounds predictions to 50 significant bits and :func:`quantise`
+rounds directions so that every h_j v_i is a multiple of 8 ulp(z_i); then z + h_j v is exactly
+representable wherever the step is small against z (and rounds by at most a relative 5u of the
+step elsewhere), so the only rounding left in φ is the loss's own.
+
+Example:
+    >>> import numpy as np
+    >>> h = 2.0 ** -np.arange(4) / 8
+    >>> d = directional(np.sin(0.0) * np.ones(1), np.sin(h)[:, None], np.sin(-h)[:, None],
+    ...                 h[:, None], np.full(1, 1e-16))
+    >>> abs(float(d.central.value[0]) - 1.0) < 1e-12, bool(d.kink[0])
+    (True, False)
+
+References:
+    Richardson, L. F., "The deferred approach to the limit", Philosophical Transactions of the
+    Royal Society A 226, 1927. Ridders, C. J. F., "Accurate computation of F'(x) and
+    F'(x) F''(x)", Advances in Engineering Software 4(2), 1982. Squire, W. and Trapp, G.,
+    "Using complex variables to estimate derivatives of real functions", SIAM Review 40(1), 1998
+    (:func:`complex_step`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from functools import lru_cache
+
+import numpy as np
+
+from .cases import CaseStack, Cell, draw_targets, to_inputs
+from .spec import LossSpec
+
+__all__ = ["LEVELS", "CHUNK_BYTES", "Estimate", "Directional", "richardson", "consistent", "directional",
+           "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
+           "in_chunks", "branch_points", "complex_step"]
+
+#: Step levels per direction: h0, h0/2, h0/4, h0/8.
+LEVELS = 4
+#: First step for logits, a power of two (losses in logits curve on a scale of about one logit).
+H0_LOGITS = 2.0 ** -5
+#: Logit values where stable formulas commonly switch branches (common practice).
+THRESHOLDS = (0.0, 1.0, -1.0, 15.0, -15.0, 20.0, -20.0, 30.0, -30.0)
+#: Largest predictions array (bytes) built or sent to the evaluator at once.
+CHUNK_BYTES = 256 * 2**20
+#: Directions with at most this many coordinates are replaced by the coordinate axes.
+FULL_JACOBIAN_MAX = 12
+
+
+@dataclass
+class Estimate:
+    """One derivative estimate per batch element: value, table error estimate, rounding bound."""
+
+    value: np.ndarray
+    table_error: np.ndarray
+    rounding: np.ndarray
+
+    @property
+    def error(self) -> np.ndarray:
+        """Estimated total error: table estimate plus propagated rounding bound."""
+        return self.table_error + self.rounding
+
+
+@dataclass
+class Directional:
+    """Central and one-sided derivative estimates along each direction; where φ is smooth over
+    the step range, where it has a kink at 0, and (neither) where it cannot be judged."""
+
+    central: Estimate
+    forward: Estimate
+    backward: Estimate
+    kink: np.ndarray
+    smooth: np.ndarray
+
+    @property
+    def judged(self) -> np.ndarray:
+        """Smooth on the whole step range, or a kink with clean one-sided tables; elsewhere (a
+        kink or branch within the step range but not at the point) nothing can be concluded."""
+        return self.smooth | self.kink
+
+    def allowance(self) -> np.ndarray:
+        """Allowed |oracle − central| from the finite differences alone: twice the table
+        estimate (it is an estimate, not a bound) plus the rounding bound."""
+        return 2.0 * self.central.table_error + self.central.rounding
+
+
+@lru_cache(maxsize=16)
+def _coefficients(levels: int, power: int) -> tuple[np.ndarray, list[tuple[int, int]]]:
+    """Weights a[e, l] with R_e = Σ_l a[e, l] D_l for every table entry e = (i, j)."""
+    rows: dict[tuple[int, int], np.ndarray] = {}
+    for i in range(levels):
+        rows[(i, 0)] = np.eye(levels)[i]
+        for j in range(1, i + 1):
+            f = 2.0 ** (power * j) - 1.0
+            rows[(i, j)] = rows[(i, j - 1)] + (rows[(i, j - 1)] - rows[(i - 1, j - 1)]) / f
+    keys = sorted(rows)
+    return np.stack([rows[k] for k in keys]), keys
+
+
+def richardson(samples: np.ndarray, bounds: np.ndarray, power: int) -> Estimate:
+    """Extrapolate raw differences D(h_l), h_l = h0 2^(−l), to h → 0.
+
+    Shapes: ``samples`` and ``bounds`` (J, *B) → an :class:`Estimate` of shape B.
+    Formula: R[i, j] = R[i, j−1] + (R[i, j−1] − R[i−1, j−1]) / (2^(p j) − 1) (module doc).
+
+    Args:
+        samples: D(h_l), J ≥ 2 levels on axis 0.
+        bounds: bound on the rounding error of each D(h_l).
+        power: 2 for central differences (even error powers), 1 for one-sided ones.
+    Returns:
+        The entry with the smallest estimated error per batch element; non-finite samples give
+        a nan value with infinite error.
+    """
+    a, keys = _coefficients(samples.shape[0], power)
+    with np.errstate(invalid="ignore", over="ignore"):
+        r = np.tensordot(a, samples, axes=(1, 0))  # every entry is a fixed combination (linear)
+        rnd = np.tensordot(np.abs(a), bounds, axes=(1, 0))  # |Σ a_l e_l| ≤ Σ |a_l| b_l
+        index = {k: e for e, k in enumerate(keys)}
+        err = np.empty_like(r)
+        for e, (i, j) in enumerate(keys):
+            if i == 0:  # no finer neighbour to judge it by: never chosen
+                err[e] = np.inf
+            elif j == 0:  # |D(h_i) − D(h_{i−1})| ≈ 3 × the error of D(h_i) when h² dominates
+                err[e] = np.abs(r[e] - r[index[(i - 1, 0)]])
+            else:  # Ridders: distance to both parents
+                err[e] = np.maximum(np.abs(r[e] - r[index[(i, j - 1)]]), np.abs(r[e] - r[index[(i - 1, j - 1)]]))
+        total = np.where(np.isfinite(err) & np.isfinite(rnd), err + rnd, np.inf)
+    best = np.argmin(total, axis=0)
+    pick = lambda x: np.take_along_axis(x, best[None], axis=0)[0]  # noqa: E731
+    value, t_err, rounding = pick(r), pick(err), pick(rnd)
+    bad = ~np.isfinite(pick(total))
+    return Estimate(np.where(bad, np.nan, value), np.where(bad, np.inf, t_err), np.where(bad, np.inf, rounding))
+
+
+def consistent(samples: np.ndarray, bounds: np.ndarray, power: int) -> np.ndarray:
+    """True where successive raw differences shrink as a smooth function's must.
+
+    Shapes: ``samples`` and ``bounds`` (J, *B) → bool B.
+    Formula: Δ_l = D(h_l) − D(h_{l+1}) ≈ c h_l^p (1 − 2^(−p)), so Δ_l / Δ_{l+1} → 2^p (higher
+    powers push it up, towards 2^(p+1)); a ratio outside [2^(p−1/2), 2^(p+1)] (or a sign change)
+    while both differences exceed their rounding bounds means the expansion does not hold on
+    this step range — a kink or a branch lies within it, or (ratio 2 in a central table) a kink
+    sits at the point itself — and the table's error estimate cannot be trusted.
+    """
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        delta = samples[:-1] - samples[1:]
+        noise = bounds[:-1] + bounds[1:]
+        loud = np.abs(delta) > noise
+        ratio = delta[:-1] / delta[1:]
+        ok = ~loud[1:] | (loud[:-1] & (ratio >= 2.0 ** (power - 0.5)) & (ratio <= 2.0 ** (power + 1)))
+        return np.all(ok, axis=0) & np.all(np.isfinite(samples), axis=0)
+
+
+def directional(
+    f0: np.ndarray, f_plus: np.ndarray, f_minus: np.ndarray, steps: np.ndarray, noise: np.ndarray
+) -> Directional:
+    """Directional derivative φ'(0) from φ(±h_l), with one-sided estimates and kink flags.
+
+    Shapes: ``f0`` and ``noise`` B; ``f_plus``, ``f_minus`` and ``steps`` (J, *B).
+
+    Args:
+        f0: φ(0). f_plus / f_minus: φ(h_l) and φ(−h_l). steps: h_l (halving along axis 0).
+        noise: a bound ε on the rounding error of each φ value.
+    Returns:
+        :class:`Directional`; ``kink`` is True where the one-sided derivatives differ by more
+        than twice the sum of their estimated errors.
+    """
+    with np.errstate(invalid="ignore", over="ignore"):
+        central = richardson((f_plus - f_minus) / (2.0 * steps), noise / steps, power=2)
+        forward = richardson((f_plus - f0) / steps, 2.0 * noise / steps, power=1)
+        backward = richardson((f0 - f_minus) / steps, 2.0 * noise / steps, power=1)
+        one_sided_ok = consistent((f_plus - f0) / steps, 2.0 * noise / steps, 1) & \
+            consistent((f0 - f_minus) / steps, 2.0 * noise / steps, 1)
+        gap = np.abs(forward.value - backward.value)
+        kink = one_sided_ok & np.isfinite(gap) & (gap > 2.0 * (forward.error + backward.error))
+        smooth = ~kink & consistent((f_plus - f_minus) / (2.0 * steps), noise / steps, 2) & np.isfinite(central.value)
+    return Directional(central, forward, backward, kink, smooth)
+
+
+def snap(z: np.ndarray, bits: int = 50) -> np.ndarray:
+    """Round to ``bits`` significant bits (zeros, ties and signs are kept; relative change ≤ 2^−bits)."""
+    m, e = np.frexp(np.asarray(z, dtype=np.float64))
+    return np.ldexp(np.round(m * 2.0**bits) / 2.0**bits, e)  # frexp: z = m 2^e, 1/2 ≤ |m| < 1
+
+
+def quantise(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
+    """Round directions so that z + h_l v is exact where the step is small against z.
+
+    Shapes: ``z`` (K, *S) snapped by :func:`snap`; ``v`` (K, D, *S); ``h0`` (K, D) powers of two.
+    Where |h0 v_i| < |z_i| / 4 every point stays within two binades of z_i, where z_i is a
+    multiple of 8 ulp(z_i); making h_min v_i a multiple of 8 ulp(z_i) keeps every sum exact.
+    """
+    zz = np.broadcast_to(z[:, None], v.shape)
+    hmin = (h0 * 2.0 ** -(levels - 1)).reshape(h0.shape + (1,) * (v.ndim - 2))
+    grid = 8.0 * np.spacing(np.abs(zz)) / hmin  # a power of two: spacing and h are
+    small = np.abs(h0.reshape(hmin.shape) * v) < np.abs(zz) / 4.0
+    with np.errstate(over="ignore", invalid="ignore"):  # where the grid is tiny, v stays as it is
+        return np.where(small, np.round(v / grid) * grid, v)
+
+
+def unit_directions(
+    rng: np.random.Generator, k: int, shape: tuple[int, ...], count: int
+) -> tuple[np.ndarray, list[str]]:
+    """``count`` directions per case (K, D, *S), unit 2-norm, with a label for each.
+
+    All but the last are dense Gaussian directions; the last is supported on one random row
+    (axis 0 of the case), which a row-specific error cannot hide from. Cases with at most
+    :data:`FULL_JACOBIAN_MAX` coordinates get every coordinate axis instead (the full Jacobian).
+    """
+    m = int(np.prod(shape))
+    if m <= FULL_JACOBIAN_MAX:
+        eye = np.eye(m).reshape((m,) + shape)
+        labels = [f"direction: coordinate {tuple(int(j) for j in np.unravel_index(i, shape))}" for i in range(m)]
+        return np.broadcast_to(eye, (k,) + eye.shape).copy(), labels
+    v = rng.standard_normal((k, count) + shape)
+    rows = rng.integers(0, shape[0], size=k)
+    keep = np.zeros((k,) + shape, bool)
+    keep[np.arange(k), rows] = True
+    v[:, -1] = np.where(keep, v[:, -1], 0.0)
+    v /= np.sqrt(np.sum(v.reshape(k, count, -1) ** 2, axis=2)).reshape((k, count) + (1,) * len(shape))
+    labels = [f"direction: dense random #{d}" for d in range(count - 1)]
+    labels.append("direction: random within one row")
+    return v, labels
+
+
+def base_steps(z: np.ndarray, v: np.ndarray, inputs: str) -> np.ndarray:
+    """h0 per (case, direction), a power of two.
+
+    Logits: :data:`H0_LOGITS`. Probabilities: an eighth of the distance to the boundary of
+    [0, 1] along v, so every point stays a valid probability (directions for probabilities are
+    scaled coordinate-wise by min(p, 1 − p), see :func:`unit_directions` callers).
+    """
+    k, d = v.shape[:2]
+    if inputs == "logits":
+        return np.full((k, d), H0_LOGITS)
+    zz = np.broadcast_to(z[:, None], v.shape)
+    room = np.minimum(zz, 1.0 - zz)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(v != 0, room / np.abs(v), np.inf).reshape(k, d, -1).min(axis=2)
+    h = np.minimum(H0_LOGITS, ratio / 8.0)
+    h = np.where(np.isfinite(h) & (h > 0), h, H0_LOGITS)
+    return 2.0 ** np.floor(np.log2(h))  # a power of two: h_l v is then exact when v is
+
+
+def step_ladder(h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
+    """h_l = h0 · 2^(−l), shape (J, *h0.shape)."""
+    return h0[None] * 2.0 ** -np.arange(levels).reshape((levels,) + (1,) * np.ndim(h0))
+
+
+def perturbed(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
+    """Every point z ± h_l v, shape (K, D, 2, J, *S): sign on axis 2 (+ first), level on axis 3."""
+    steps = step_ladder(h0, levels)  # (J, K, D)
+    s = np.moveaxis(steps, 0, -1)[:, :, None, :] * np.array([1.0, -1.0])[None, None, :, None]
+    s = s.reshape(s.shape + (1,) * (v.ndim - 2))
+    return z[:, None, None, None] + s * v[:, :, None, None]
+
+
+def point_stacks(stack: CaseStack, v: np.ndarray, h0: np.ndarray,
+                 levels: int = LEVELS) -> Iterator[tuple[slice, CaseStack]]:
+    """Stacks of every point z ± h_l v (each case's targets repeated), a few cases at a time.
+
+    Yields ``(cases, points)``: the slice of cases covered and a stack of m·D·2·J points in the
+    order of :func:`perturbed`, so that values reshape to (m, D, 2, J, …). All cases at once
+    unless that would exceed :data:`CHUNK_BYTES`.
+    """
+    shape = stack.cell.pred_shape()
+    per = v.shape[1] * 2 * levels
+    step = max(1, CHUNK_BYTES // (per * max(int(np.prod(shape)), 1) * 8))
+    for a in range(0, len(stack), step):
+        sl = slice(a, min(a + step, len(stack)))
+        pts = perturbed(stack.predictions[sl], v[sl], h0[sl], levels)
+        m = pts.shape[0]
+        yield sl, CaseStack(pts.reshape((m * per,) + shape), np.repeat(stack.targets[sl], per, axis=0), stack.cell)
+
+
+def in_chunks(fn: Callable[[np.ndarray], np.ndarray], count: int, case_bytes: int) -> np.ndarray:
+    """``fn(indices)`` over chunks of a power-of-two number of cases (at least 8) whose
+    predictions fit :data:`CHUNK_BYTES`, concatenated: the compiled shapes repeat."""
+    size = max(8, 2 ** int(np.floor(np.log2(max(CHUNK_BYTES // max(case_bytes, 1), 1)))))
+    if count <= size:
+        return fn(np.arange(count))
+    return np.concatenate([fn(np.arange(a, min(a + size, count))) for a in range(0, count, size)])
+
+
+def branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: str = "soft") -> CaseStack:
+    """Six cases of ``cell`` where implementations branch: all-zero logits, two classes tied at
+    the top, the labelled class tied with another, exact zeros among random logits, logits on
+    the :data:`THRESHOLDS`, every class tied (binary: ±1e-300 and ±1e-8 around the sign
+    switch) — in the declared input space."""
+    shape, k = cell.pred_shape(), 6
+    y = draw_targets(spec, cell, rng, k, domain=domain)
+    z = rng.standard_normal((k,) + shape)
+    z[0] = 0.0
+    if cell.c is not None:
+        lab = y if spec.kind == "categorical" else np.argmax(y, axis=-1)
+        lab = np.where((lab >= 0) & (lab < cell.c), lab, 0)
+        top = z[1].max(axis=-1) + 1.0
+        z[1, :, 0], z[1, :, 1] = top, top  # two classes tied at the maximum
+        other = (lab[2] + 1) % cell.c
+        rows = np.arange(cell.n)
+        z[2, rows, other] = z[2, rows, lab[2]]  # the labelled class tied with another
+        z[5] = 3.0  # every class tied
+    else:
+        z[1] = np.where(rng.random(shape) < 0.5, 0.0, z[1])
+        z[2] = 1e-300 * np.sign(z[2])  # either side of the sign switch
+        z[5] = np.where(rng.random(shape) < 0.5, 1e-8, -1e-8)
+    z[3] = np.where(rng.random(shape) < 0.3, 0.0, z[3])  # exact zeros among random values
+    z[4] = rng.choice(THRESHOLDS, size=shape)
+    notes = ["special: all zero", "special: tie at the top", "special: label tied", "special: exact zeros",
+             "special: branch thresholds", "special: all tied" if cell.c else "special: ±1e-8"]
+    return CaseStack(to_inputs(spec, z), y, cell, notes)
+
+
+def complex_step(fn: Callable[[np.ndarray], np.ndarray], z: np.ndarray, v: np.ndarray, h: float = 1e-20) -> np.ndarray:
+    """Directional derivative Im f(z + i h v) / h (Squire and Trapp 1998).
+
+    There is no subtraction, so no cancellation: the error is O(h²) and h can be tiny. It is
+    valid only for implementations that are complex-analytic in their input: ``abs``,
+    ``maximum``, comparisons and real casts silently drop the imaginary part and give a wrong
+    derivative with no warning, so it is an extra oracle, never the only one.
+
+    Args:
+        fn: evaluates the loss on complex128 predictions of ``z``'s shape.
+        z: real point. v: direction (same shape). h: imaginary step.
+    Returns:
+        The estimate (same shape as ``fn``'s output), float64.
+
+    Example:
+        >>> float(complex_step(lambda x: np.exp(x).sum(), np.zeros(2), np.array([1.0, 0.0])))
+        1.0
+    """
+    out = fn(np.asarray(z, dtype=np.complex128) + 1j * h * np.asarray(v, dtype=np.float64))
+    return np.imag(np.asarray(out)) / h  # f(x + ih) = f(x) + i h f'(x) + O(h²) for analytic f

@@ -1,0 +1,422 @@
+"""``gradient``: every gradient oracle agrees with float64 finite differences, and with each other.
+
+Notation and shapes: a stack of K cases, predictions z (K, *S) with the class axis last; D
+directions v (K, D, *S) per case (dense random, one random row; all coordinate axes for tiny
+cases); J = 4 halving steps. The scalar studied per case is φ(z) = ⟨c, L(z)⟩ with a random
+cotangent c (a positive scale for scalar losses, a Gaussian vector for per-example losses), so a
+backward pass that ignores or mis-broadcasts its incoming cotangent is caught.
+
+Oracles compared (all in float64, on whole stacks):
+
+- reverse mode (the VJP with c) · v against central finite differences of φ along v
+  (Richardson table, :mod:`lossguard._fd`); where the one-sided differences disagree the point
+  is a kink, and the autodiff value need only lie between the two one-sided derivatives;
+- forward mode (JVP along v) against reverse mode, so the two autodiff modes agree;
+- a declared closed-form ``grad`` · v against finite differences of Σ L (the gradient of the
+  sum of the outputs; for numpy losses it *is* the reverse oracle);
+- the registry's hand-derived gradient against reverse mode, when a reference is declared;
+- per-example outputs: the VJP with a one-hot cotangent e_i vanishes outside row i;
+- float32: reverse mode in float32 against reverse mode in float64 on the same float32-rounded
+  cases (finite values only; non-finite float32 gradients are the ``finite`` check's business).
+
+Cases: the battery's random and extreme-ladder cases plus special points where implementations
+branch: all-zero logits, exact ties (with and without the labelled class), exact zeros among
+random logits, and the thresholds where stable formulas switch branches (common practice: 15,
+20 and 30 logits). Before use predictions are rounded to 50 significant bits so that every
+perturbed point is exact (:func:`lossguard._fd.snap`).
+
+Tolerances (printed with the verdict): finite differences 2 × table estimate + Σ|a_l| ε/h_l
+with ε = γ_n(|f| + S) the value's rounding bound; an autodiff slope γ_n(1 + S)(‖g‖∞ + G)‖v‖₁;
+vector comparisons :func:`lossguard.tolerance.rounding_allowance` (normwise) — S = max|z|, G the
+size of the cancelling gradient terms. A failure reports the worst point and direction, both
+values, the allowance and the Taylor remainder order (:mod:`lossguard._taylor`).
+
+Complex step (:func:`lossguard._fd.complex_step`) is not used here: the JAX adapter casts inputs
+to real dtypes, and a stable loss (abs, maximum, comparisons) drops the imaginary part silently,
+so it could not be trusted without the author's word that the code is complex-analytic.
+
+Example:
+    >>> import jax, jax.numpy as jnp
+    >>> from lossguard import declare, run
+    >>> def ce(z, y):
+    ...     return -jnp.mean(jnp.take_along_axis(jax.nn.log_softmax(z), y[:, None], -1))
+    >>> run(declare(ce, kind="categorical"), effort="quick", only=["gradient"]).check("gradient").verdict
+    'pass'
+
+References:
+    Richardson (1927) and Ridders (1982) for the extrapolation; Farrell, Ham, Funke, Rognes,
+    SIAM J. Sci. Comput. 35(4), 2013 for the Taylor test (see the modules cited).
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .. import _fd
+from .._taylor import TaylorResult, taylor_along, taylor_orders
+from ..cases import CaseStack, Cell, concat
+from ..adapters.jax_loss import JaxAdapter
+from ..errors import LossCallError
+from ..evaluate import Evaluator, NoGradient
+from ..result import CheckResult, Example
+from ..tolerance import gamma, op_count, rounding_allowance
+from ._base import Check, Context
+from ._compare import examples_from, mismatch, replay
+from .reference import case_scale, gradient_term_scale, reference_stack_values
+
+__all__ = ["CHECK", "check_stacks", "special_cases", "DIRECTIONS"]
+
+DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
+
+
+def _point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray, out: tuple[int, ...]) -> np.ndarray:
+    """float64 loss values at every z ± h_l v: (K, D, 2, J, *out)."""
+    parts = []
+    for _, pts in _fd.point_stacks(stack, v, h0):
+        vals = _fd.in_chunks(lambda idx: ev.values(pts.take(idx), "float64"), len(pts), pts.predictions[0].nbytes)
+        parts.append(vals.reshape((-1,) + v.shape[1:2] + (2, _fd.LEVELS) + out))
+    return np.concatenate(parts)
+
+
+@dataclass
+class _Tally:
+    """What the cells found, pair by pair."""
+
+    total: int = 0
+    bad: int = 0
+    pairs: dict[str, int] = field(default_factory=dict)
+    worst: list[tuple[float, Example]] = field(default_factory=list)
+    ratio: float = 0.0
+    kinks: int = 0
+    judged: int = 0
+    skipped: int = 0
+    orders: list[float] = field(default_factory=list)
+    fd_tol: list[float] = field(default_factory=list)
+    notes: set[str] = field(default_factory=set)
+    oracles: set[str] = field(default_factory=set)
+    float32_cases: int = 0
+
+    def add(self, pair: str, bad: np.ndarray, ratio: np.ndarray, examples: list[tuple[float, Example]]) -> None:
+        if bad.any():
+            self.pairs[pair] = self.pairs.get(pair, 0) + int(bad.sum())
+        finite = ratio[np.isfinite(ratio)]
+        if finite.size:
+            self.ratio = max(self.ratio, float(finite.max()))
+        self.worst += examples
+
+
+def _sum_out(a: np.ndarray, lead: int) -> np.ndarray:
+    return a.reshape(a.shape[:lead] + (-1,)).sum(axis=-1)
+
+
+def _slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale: np.ndarray, n: int) -> np.ndarray:
+    """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3)."""
+    k, d = v.shape[:2]
+    gmax = np.nanmax(np.where(np.isfinite(g), np.abs(g), 0.0).reshape(k, -1), axis=1)
+    elem = gamma(n, "float64") * (1.0 + scale) * (gmax + grad_scale)  # normwise bound on each g_i
+    l1 = np.abs(v).reshape(k, d, -1).sum(axis=2)
+    dot = gamma(v[0, 0].size, "float64") * np.abs(g[:, None] * v).reshape(k, d, -1).sum(axis=2)
+    return elem[:, None] * l1 + dot
+
+
+def _example(ctx: Context, stack: CaseStack, k: int, what: str, got: float, expected: object,
+             err: float, tol: float, note: str) -> tuple[float, Example]:
+    ref = float(expected) if isinstance(expected, (float, np.floating)) else float("nan")
+    rel = err / abs(ref) if np.isfinite(ref) and ref != 0 else err
+    ex = Example(what=what, predictions=stack.predictions[k], targets=stack.targets[k], got=got,
+                 expected=expected, abs_err=err, rel_err=rel, allowance=tol,
+                 note="; ".join(s for s in (stack.note(k), note) if s),
+                 replay=replay(ctx.spec, stack.predictions[k], stack.targets[k]))
+    return (err / tol if tol > 0 else np.inf), ex
+
+
+def _directional_pair(ctx: Context, tally: _Tally, stack: CaseStack, what: str, slope: np.ndarray,
+                      fd: _fd.Directional, a_dot: np.ndarray, labels: list[str],
+                      taylor: TaylorResult | None) -> tuple[np.ndarray, np.ndarray]:
+    """Compare an oracle's slopes (K, D) with the finite differences; returns (bad per case, bad (K, D))."""
+    c_est, f_est, b_est = fd.central, fd.forward, fd.backward
+    smooth = fd.smooth
+    tol = fd.allowance() + a_dot
+    with np.errstate(invalid="ignore"):
+        err = np.abs(slope - c_est.value)
+        bad_s = smooth & ~(err <= tol)
+        margin = 2.0 * (f_est.error + b_est.error) + a_dot
+        lo = np.minimum(f_est.value, b_est.value) - margin
+        hi = np.maximum(f_est.value, b_est.value) + margin
+        bad_k = fd.kink & ~((slope >= lo) & (slope <= hi))
+        ratio = np.where(smooth, err / tol, np.where(fd.kink, np.maximum(lo - slope, slope - hi) / margin + 1, 0.0))
+        bad = bad_s | bad_k
+        ratio = np.where(np.isnan(ratio) & bad, np.inf, ratio)
+        gap = np.fmax(lo - slope, slope - hi)  # distance outside the one-sided interval
+    examples = []
+    flat = np.flatnonzero(bad)
+    for k, d in zip(*np.unravel_index(flat[np.argsort(-ratio.reshape(-1)[flat], kind="stable")][:2], bad.shape)):
+        order = taylor.describe((k, d)) if taylor is not None else ""
+        if fd.kink[k, d]:
+            exp: object = f"between {f_est.value[k, d]:.9g} and {b_est.value[k, d]:.9g} (one-sided, a kink)"
+            e_kd = float(gap[k, d]) if np.isfinite(gap[k, d]) else np.inf
+            examples.append(_example(ctx, stack, int(k), f"{what}, {labels[d]}", float(slope[k, d]), exp,
+                                     e_kd, float(margin[k, d]), order))
+        else:
+            examples.append(_example(ctx, stack, int(k), f"{what}, {labels[d]}", float(slope[k, d]),
+                                     float(c_est.value[k, d]), float(err[k, d]), float(tol[k, d]), order))
+    tally.add(what, bad.any(axis=1), ratio.max(axis=1), examples)
+    return bad.any(axis=1), bad
+
+
+def _probe(ctx: Context, stack: CaseStack, tally: _Tally) -> None:
+    spec, ev = ctx.spec, ctx.evaluator
+    rng = ctx.rng(f"gradient {stack.cell}")
+    stack = stack.with_predictions(_fd.snap(stack.predictions))
+    z, y, cell = stack.predictions, stack.targets, stack.cell
+    k, shape = len(stack), cell.pred_shape()
+    out = ev.cotangent_shape(stack)
+    lead = 1 + len(out)
+    scale = case_scale(ctx, z)
+    n = op_count(cell.n, cell.c or cell.d or 1)
+    big_g = gradient_term_scale(ctx, y)
+    c = rng.uniform(0.5, 2.0, size=k) if not out else rng.standard_normal((k,) + out)
+    cmax = np.abs(c).reshape(k, -1).max(axis=1)
+    vals, g = ev.value_and_grad(stack, "float64", cotangent=c)
+    oracle = "declared grad" if not ev.has_autodiff else "reverse mode"
+    tally.oracles.add(oracle)
+
+    # directions, steps and the finite-difference stack (one evaluator call per chunk)
+    v, labels = _fd.unit_directions(rng, k, shape, DIRECTIONS.get(ctx.effort, 3))
+    if spec.inputs == "probabilities":  # scale by the room to the boundary: points stay in [0, 1]
+        v = v * np.minimum(z, 1.0 - z)[:, None]
+        norm = np.sqrt(np.sum(v.reshape(v.shape[:2] + (-1,)) ** 2, axis=2))
+        v = v / np.where(norm > 0, norm, 1.0).reshape(norm.shape + (1,) * len(shape))
+    h0 = _fd.base_steps(z, v, spec.inputs)
+    v = _fd.quantise(z, v, h0)
+    d = v.shape[1]
+    fv = _point_values(ev, stack, v, h0, out)
+    cb = c.reshape((k, 1, 1, 1) + out)
+    with np.errstate(all="ignore"):
+        top = np.maximum(np.abs(vals), np.nanmax(np.abs(fv).reshape((k, -1) + out), axis=1))
+    atol = rounding_allowance(top, scale + _fd.H0_LOGITS, dtype="float64", n_ops=n, both_sides=1).atol
+    atol = np.broadcast_to(atol, top.shape)
+    steps = _fd.step_ladder(h0)
+    fds, noise, f0s, phis = {}, {}, {}, {}
+    for name, w in (("c", cb), ("1", np.ones_like(cb))):
+        phis[name] = phi = _sum_out(fv * w, 4)  # ⟨w, L⟩ at every point: (K, D, 2, J)
+        noise[name] = _sum_out(np.abs(w[:, 0, 0, 0]) * atol, 1)
+        f0s[name] = _sum_out(vals * w[:, 0, 0, 0], 1)
+        fp, fm = np.moveaxis(phi[:, :, 0], -1, 0), np.moveaxis(phi[:, :, 1], -1, 0)
+        f0b = np.broadcast_to(f0s[name][:, None], (k, d))
+        fds[name] = _fd.directional(f0b, fp, fm, steps, np.broadcast_to(noise[name][:, None], (k, d)))
+    fd = fds["c"]
+    judged = fd.judged
+    tally.total += k
+    tally.judged += int(judged.sum())
+    tally.skipped += int((~judged).sum())
+    tally.kinks += int(fd.kink.sum())
+    good_tol = fd.allowance()[np.isfinite(fd.allowance())]
+    tally.fd_tol += [float(good_tol.min()), float(good_tol.max())] if good_tol.size else []
+
+    # reverse mode (or the declared grad for numpy losses) against finite differences
+    with np.errstate(invalid="ignore"):  # inf · 0 where the true gradient is infinite: not judged
+        slope = np.sum((g[:, None] * v).reshape(k, d, -1), axis=2)
+        a_dot = _slope_allowance(g, v, scale, big_g * cmax, n)
+    f0b = np.broadcast_to(f0s["c"][:, None], (k, d))
+    taylor = taylor_orders(f0b, np.moveaxis(phis["c"][:, :, 0], -1, 0), steps, slope,
+                           np.broadcast_to(noise["c"][:, None], (k, d)))
+    smooth_orders = taylor.observed[fd.smooth & np.isfinite(taylor.observed)]
+    tally.orders += smooth_orders.tolist()
+    bad = np.zeros(k, bool)
+    case_bad, kd_bad = _directional_pair(ctx, tally, stack, f"{oracle} vs finite differences", slope, fd,
+                                         a_dot, labels, taylor)
+    bad |= case_bad
+    if kd_bad.any():
+        kk, dd = np.argwhere(kd_bad)[np.argmax(np.where(kd_bad, np.abs(slope - fd.central.value), -1)[kd_bad])]
+        def phi(points: np.ndarray) -> np.ndarray:  # plain calls, no new compilation: it runs once
+            one = CaseStack(points, np.repeat(y[kk:kk + 1], len(points), axis=0), cell)
+            return _sum_out(ev.values(one, "float64", eager=True) * c[kk][None], 1)
+
+        t = taylor_along(phi, z[kk], v[kk, dd], float(h0[kk, dd]), float(f0s["c"][kk]), float(slope[kk, dd]),
+                         float(noise["c"][kk]))
+        tally.notes.add(f"at the worst point, {t.describe((0,))}")
+        ones = fds["1"].central.value
+        if np.all(np.abs(slope[kd_bad] - ones[kd_bad]) <= (fds["1"].allowance() + a_dot)[kd_bad]):
+            tally.notes.add("the gradient equals the one for cotangent 1: the backward pass ignores its "
+                            "incoming cotangent")
+
+    # forward mode against reverse mode (JAX only: other adapters derive forward from reverse)
+    if isinstance(ev.adapter, JaxAdapter):
+        try:
+            tang = np.stack([ev.jvp(stack, np.ascontiguousarray(v[:, j]), "float64")[1] for j in range(d)], axis=1)
+            fwd = _sum_out(tang * c.reshape((k, 1) + out), 2)
+            tally.oracles.add("forward mode")
+            with np.errstate(invalid="ignore"):
+                err = np.abs(fwd - slope)
+                fb = ~(err <= 2.0 * a_dot) & np.isfinite(slope)
+                fratio = (err / (2 * a_dot)).max(axis=1)
+            side = np.where(kd_bad, "finite differences side against reverse mode",
+                            np.where(fd.judged, "finite differences side with reverse mode",
+                                     "finite differences cannot judge this point"))
+            ex = [_example(ctx, stack, int(i), f"forward mode vs reverse mode, {labels[j]}", float(fwd[i, j]),
+                           float(slope[i, j]), float(err[i, j]), float(2 * a_dot[i, j]), str(side[i, j]))
+                  for i, j in np.argwhere(fb)[:2]]
+            tally.add("forward mode vs reverse mode", fb.any(axis=1), fratio, ex)
+            bad |= fb.any(axis=1)
+        except (LossCallError, NoGradient) as exc:
+            why = str(exc).split(" while computing")[0].replace("loss raised ", "")
+            tally.notes.add(f"forward mode unavailable: {why.rstrip('. ')}")
+
+    # a declared closed-form grad beside autodiff: the gradient of Σ outputs
+    if spec.grad is not None and ev.has_autodiff:
+        gu = ev.user_grads(stack, "float64")
+        if gu is not None:
+            tally.oracles.add("declared grad")
+            with np.errstate(invalid="ignore"):
+                su = np.sum((gu[:, None] * v).reshape(k, d, -1), axis=2)
+            bad |= _directional_pair(ctx, tally, stack, "declared grad vs finite differences", su, fds["1"],
+                                     _slope_allowance(gu, v, scale, big_g, n), labels, None)[0]
+
+    # the registry's hand-derived gradient
+    if spec.reference is not None:
+        tally.oracles.add(f"registry {spec.reference!r}")
+        with np.errstate(all="ignore"):
+            _, gref = reference_stack_values(ctx, z, y, cotangent=c)
+        al = rounding_allowance(gref, scale, dtype=ev.computed_dtype("float64"), n_ops=n, normwise=True,
+                                grad_scale=big_g * cmax)
+        m = mismatch(g, gref, al.atol)
+        ex = examples_from(m, spec, stack, f"{oracle} vs registry {spec.reference!r} closed form")
+        tally.add("registry closed form", m.case_bad, m.case_ratio, [(e.abs_err / e.allowance, e) for e in ex])
+        bad |= m.case_bad
+
+    if ev.output == "per_example":
+        bad |= _row_leaks(ctx, tally, stack, out, scale, big_g, n)
+    if ev.has_autodiff:
+        bad |= _float32(ctx, tally, stack, c, scale, big_g * cmax, n, ~bad)
+    tally.bad += int(bad.sum())
+
+
+def _row_leaks(ctx: Context, tally: _Tally, stack: CaseStack, out: tuple[int, ...], scale: np.ndarray,
+               big_g: np.ndarray, n: int) -> np.ndarray:
+    """VJP with a one-hot cotangent: example i's loss must not reach other rows."""
+    ev, k = ctx.evaluator, len(stack)
+    rng = ctx.rng(f"gradient rows {stack.cell}")
+    pick = rng.integers(0, int(np.prod(out)), size=k)
+    cot = np.zeros((k, int(np.prod(out))))
+    cot[np.arange(k), pick] = 1.0
+    cot = cot.reshape((k,) + out)
+    _, g = ev.value_and_grad(stack, "float64", cotangent=cot)
+    own = np.broadcast_to(cot.reshape(cot.shape + (1,) * (g.ndim - cot.ndim)) > 0, g.shape)
+    flat_g, flat_own = g.reshape(k, -1), own.reshape(k, -1)
+    with np.errstate(invalid="ignore"):
+        leak = np.max(np.where(flat_own, 0.0, np.abs(flat_g)), axis=1)
+        mine = np.max(np.where(flat_own, np.abs(flat_g), 0.0), axis=1)
+        tol = gamma(n, "float64") * (1.0 + scale) * (mine + big_g)
+        bad = ~(leak <= tol)
+    ex = []
+    for i in np.flatnonzero(bad)[:2]:
+        row = np.unravel_index(pick[i], out)
+        ex.append(_example(ctx, stack, int(i), f"VJP with cotangent 1 at output {row}: gradient outside its row",
+                           float(leak[i]), 0.0, float(leak[i]), float(tol[i]),
+                           "example losses must depend on their own row only"))
+    tally.add("rows: example i reaches other rows", bad, leak / tol, ex)
+    return bad
+
+
+def _float32(ctx: Context, tally: _Tally, stack: CaseStack, c: np.ndarray, scale: np.ndarray,
+             big_g: np.ndarray, n: int, ok64: np.ndarray) -> np.ndarray:
+    """Reverse mode in float32 against float64 on the same float32-rounded cases."""
+    ev = ctx.evaluator
+    s32 = stack.with_predictions(stack.predictions.astype(np.float32).astype(np.float64))
+    _, g32 = ev.value_and_grad(s32, "float32", cotangent=c)
+    _, g64 = ev.value_and_grad(s32, "float64", cotangent=c)
+    k = len(stack)
+    both = np.all(np.isfinite(g32).reshape(k, -1), axis=1) & np.all(np.isfinite(g64).reshape(k, -1), axis=1) & ok64
+    al = rounding_allowance(g64, case_scale(ctx, s32.predictions), dtype=ev.computed_dtype("float32"),
+                            n_ops=n, normwise=True, grad_scale=big_g)
+    m = mismatch(g32, g64, al.atol)
+    bad = m.case_bad & both
+    m.case_bad = bad
+    ex = examples_from(m, ctx.spec, s32, "reverse mode in float32 vs float64 (same float32 inputs)", dtype="float32")
+    tally.add("float32 reverse mode vs float64", bad, np.where(both, m.case_ratio, 0.0),
+              [(e.abs_err / e.allowance, e) for e in ex])
+    tally.float32_cases += int(both.sum())
+    return bad
+
+
+_HINTS = {
+    "vs finite differences": ("the gradient is not the derivative of the values: a custom_vjp/custom_jvp "
+                              "rule out of step with the forward pass (a sign, a missing 1/N, a "
+                              "stop_gradient on a term that depends on the predictions), or a branch whose "
+                              "derivative is wrong exactly at the point shown (zeros, ties)"),
+    "forward mode": "forward and reverse mode disagree: a custom rule that only one mode uses is wrong",
+    "rows": ("example i's gradient reaches other rows: the per-example loss mixes examples, or its "
+             "backward pass mis-broadcasts the cotangent"),
+    "registry": "autodiff differs from the registry's hand-derived gradient (the reference check says more)",
+    "float32": ("the float32 gradient differs from float64 beyond float32 rounding: a cancellation or a "
+                "term lost in float32"),
+}
+
+
+def _run(ctx: Context) -> CheckResult:
+    ev = ctx.evaluator
+    if not ev.has_gradient:
+        return CheckResult(name="gradient", verdict="skip",
+                           summary=("no gradient oracle: the loss is not JAX-traceable and declares no "
+                                    "grad; declare grad=... to have it checked"))
+    return check_stacks(ctx, [concat([ctx.standard_cases(cell), special_cases(ctx, cell)]) for cell in ctx.cells])
+
+
+def special_cases(ctx: Context, cell: Cell) -> CaseStack:
+    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`)."""
+    return _fd.branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain)
+
+
+def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
+    """The gradient check on given stacks (the battery passes its standard and special cases;
+    benchmarks pass a few cases of a large shape)."""
+    t0 = time.perf_counter()
+    ev = ctx.evaluator
+    calls0 = ev.calls
+    tally = _Tally()
+    for stack in stacks:
+        _probe(ctx, stack, tally)
+    worst = [e for _, e in sorted(tally.worst, key=lambda e: -(e[0] if not np.isnan(e[0]) else np.inf))][:3]
+    order = float(np.median(tally.orders)) if tally.orders else float("nan")
+    oracles = ", ".join(sorted(tally.oracles))
+    notes = "; ".join(sorted(tally.notes))
+    if tally.bad:
+        verdict = "fail"
+        pairs = "; ".join(f"{p} on {n}" for p, n in sorted(tally.pairs.items(), key=lambda x: -x[1]))
+        summary = f"gradient wrong on {tally.bad} of {tally.total} cases: {pairs}" + (f" ({notes})" if notes else "")
+    else:
+        verdict = "pass"
+        taylor = f"median Taylor order {order:.2f}" if np.isfinite(order) else "Taylor order n/a (linear pieces)"
+        summary = (f"{oracles} agree with float64 finite differences on {tally.total} cases "
+                   f"({tally.judged + tally.skipped} directions) "
+                   f"(largest error {tally.ratio:.2g} of its allowance; {taylor}; {tally.kinks} directions at "
+                   f"kinks judged by one-sided bounds, {tally.skipped} too near a kink or singularity to judge)")
+    fd_range = f" (from {min(tally.fd_tol):.2g} to {max(tally.fd_tol):.2g})" if tally.fd_tol else ""
+    allowance = (f"finite differences: 2 × Richardson table estimate + Σ|a_l|·ε/h_l, ε = γ_n(|f| + S), u=1.1e-16"
+                 f"{fd_range}; autodiff slope g·v: γ_n(1 + S)(‖g‖∞ + G)‖v‖₁; forward vs reverse: twice that; "
+                 f"kinks: between the one-sided derivatives; vectors: 2·γ_n·(1 + max|z|)·(‖g*‖∞ + G); "
+                 f"float32: the same in float32")
+    hint = " | ".join(h for key, h in _HINTS.items() if any(key in p for p in tally.pairs))
+    return CheckResult(
+        name="gradient", verdict=verdict, summary=summary, cases=tally.total, failed=tally.bad,
+        allowance=allowance, worst=worst, hint=hint,
+        details={"oracles": sorted(tally.oracles), "failed_pairs": dict(tally.pairs),
+                 "directions_judged": tally.judged, "directions_not_judged": tally.skipped,
+                 "kinks": tally.kinks, "median_taylor_order": order,
+                 "max_error_over_allowance": tally.ratio, "notes": sorted(tally.notes),
+                 "float32_cases_compared": tally.float32_cases, "loss_evaluations": ev.calls - calls0},
+        seconds=time.perf_counter() - t0,
+    )
+
+
+CHECK = Check(
+    name="gradient",
+    summary="autodiff, declared and registry gradients agree with float64 finite differences (kink-aware)",
+    run=_run,
+    skip_hint="skip only for a loss that is never differentiated",
+    order=30,
+)
