@@ -1,0 +1,119 @@
+"""How the battery's cost grows with the size of the logits, from (8, 4) to (4096, 1000).
+
+Each shape (N, C) is run as the only cell of the battery (``lossguard.run(..., cells=[Cell(N, C)])``
+replaces the shape menu) at the default effort, for the small cross-entropy of
+``speed_losses.py`` with its reference, in a fresh process that has first warmed JAX up on another
+loss. Reported: battery wall time, loss evaluations (``Result.loss_evaluations``), XLA compiles,
+peak resident memory, and the slowest checks. A watchdog stops a shape that exceeds the memory
+or time limit (the machine is shared), and says so.
+
+Target: the (4096, 1000) battery costs at most 3× the (64, 10) battery.
+
+    python benchmarks/growth.py [--effort default] [--max-rss-gb 8] [--timeout 900]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+SHAPES = ((8, 4), (64, 10), (256, 100), (1024, 300), (4096, 1000))
+
+
+def child(n: int, c: int, effort: str) -> None:
+    """Warm up, then run the battery on one (N, C) cell and print one JSON line."""
+    import lossguard
+    import speed_losses
+    from _common import CompileCounter
+    from lossguard.cases import Cell
+
+    warm = lossguard.declare(speed_losses.other_small_loss, kind="categorical", reference="categorical_ce")
+    lossguard.run(warm, effort="quick")
+    counter = CompileCounter.install()
+    counter.reset()
+    spec = lossguard.declare(speed_losses.small_loss, **speed_losses.DECLARATIONS["small_loss"])
+    t0 = time.perf_counter()
+    result = lossguard.run(spec, effort=effort, cells=[Cell(n, c)])
+    seconds = time.perf_counter() - t0
+    print(json.dumps({
+        "seconds": seconds, "evaluations": result.loss_evaluations, "ok": result.ok,
+        "compiles": counter.total()[0], "compile_seconds": counter.total()[1],
+        "checks": {ch.name: [ch.verdict, ch.seconds] for ch in result.checks},
+    }))
+
+
+def _rss_gb(pid: int) -> float:
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 2**20
+    except OSError:
+        pass
+    return 0.0
+
+
+def _measure(n: int, c: int, effort: str, max_rss: float, timeout: float) -> dict:
+    cmd = [sys.executable, str(Path(__file__).resolve()), "--child", str(n), str(c), effort]
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    t0, peak, stopped = time.perf_counter(), 0.0, ""
+    while proc.poll() is None:
+        peak = max(peak, _rss_gb(proc.pid))
+        if peak > max_rss:
+            stopped = f"stopped: resident memory passed {max_rss:g} GB"
+        elif time.perf_counter() - t0 > timeout:
+            stopped = f"stopped: took longer than {timeout:g} s"
+        if stopped:
+            proc.kill()
+            proc.wait()
+            break
+        time.sleep(0.25)
+    wall = time.perf_counter() - t0
+    out = proc.stdout.read() if proc.stdout else ""
+    lines = [ln for ln in out.splitlines() if ln.startswith("{")]
+    if stopped or not lines:
+        return {"stopped": stopped or f"child failed with exit code {proc.returncode}", "wall": wall, "peak": peak}
+    data = json.loads(lines[-1])
+    data["peak"], data["wall"] = peak, wall
+    return data
+
+
+def main() -> None:
+    from _common import header, table
+
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--effort", default="default", choices=("quick", "default", "thorough"))
+    parser.add_argument("--max-rss-gb", type=float, default=8.0, help="stop a shape above this resident memory")
+    parser.add_argument("--timeout", type=float, default=900.0, help="stop a shape after this many seconds")
+    args = parser.parse_args()
+    header(f"growth: battery cost against the size of the logits (effort {args.effort})")
+    rows, base, top = [], None, None
+    for n, c in SHAPES:
+        d = _measure(n, c, args.effort, args.max_rss_gb, args.timeout)
+        if "stopped" in d:
+            rows.append([f"({n}, {c})", "-", "-", "-", "-", d["peak"], d["stopped"]])
+            continue
+        slow = sorted(d["checks"].items(), key=lambda kv: -kv[1][1])[:3]
+        rows.append([f"({n}, {c})", d["seconds"], d["evaluations"], d["compiles"], d["compile_seconds"], d["peak"],
+                     ", ".join(f"{k} {v[1]:.2g}s" for k, v in slow) + ("" if d["ok"] else " (NOT ok)")])
+        if (n, c) == (64, 10):
+            base = d["seconds"]
+        if (n, c) == SHAPES[-1]:
+            top = d["seconds"]
+    table(["logits", "battery s", "loss evals", "XLA compiles", "compile s", "peak RSS GB", "slowest checks"], rows)
+    if base and top:
+        print(f"(4096, 1000) / (64, 10) = {top / base:.2f}  (target ≤ 3: {'met' if top / base <= 3 else 'not met'})")
+    else:
+        print("(4096, 1000) / (64, 10): not measured to completion (see the table); target ≤ 3 not met")
+
+
+if __name__ == "__main__":
+    if len(sys.argv) >= 5 and sys.argv[1] == "--child":
+        child(int(sys.argv[2]), int(sys.argv[3]), sys.argv[4])
+    else:
+        main()
