@@ -5,7 +5,8 @@ A row is *wrong by M* when the label's logit is −M and another class's is +M (
 is −M·(2y − 1)). Every row of a case is wrong by the same M, with the same labels and the same
 competing classes at every M, so row i at M compares with row i at the moderate M₀ = 1.
 
-Formula: with r_i(M) = ‖∂L/∂z_i‖∞ at magnitude M, the check requires for M in
+Formula: with r_i(M) = |∂L/∂z_{i,y_i}| at magnitude M — the gradient on the label's own logit,
+the component that would correct the mistake (binary: |∂L/∂z_i| per element) — the check requires for M in
 :data:`CONFIDENT` (evaluated in float32, the usual training dtype)
 
     r_i(M) ≥ u · r_i(M₀),     u = unit roundoff of float32 (2^-24)
@@ -56,10 +57,17 @@ def wrong_stack(ctx: Context, cell: Cell, mags: tuple[float, ...]) -> CaseStack:
     return CaseStack(np.stack(preds), np.stack(targets), cell, notes)
 
 
-def _row_norms(g: np.ndarray, spec_kind: str) -> np.ndarray:
-    """‖∂L/∂z_i‖∞ per row: (K, N) for softmax kinds, per element for binary."""
+def _row_norms(g: np.ndarray, targets: np.ndarray, spec_kind: str) -> np.ndarray:
+    """|∂L/∂z_{i,y_i}| per row, (K, N), for softmax kinds; |∂L/∂z| per element for binary.
+
+    The label's coordinate, not the row's largest entry: a bystander class's tiny gradient must
+    not keep a row "alive" whose label and competitor get none.
+    """
     a = np.abs(g)
-    return a.max(axis=-1) if spec_kind != "binary" else a.reshape(a.shape[0], -1)
+    if spec_kind == "binary":
+        return a.reshape(a.shape[0], -1)
+    labels = targets if spec_kind == "categorical" else np.argmax(targets, axis=-1)
+    return np.take_along_axis(a, labels[..., None].astype(np.int64), axis=-1)[..., 0]
 
 
 def _run(ctx: Context) -> CheckResult:
@@ -70,7 +78,7 @@ def _run(ctx: Context) -> CheckResult:
     cell = ctx.cells[0]
     stack = wrong_stack(ctx, cell, mags)
     _, grads = ev.value_and_grad(fill_to(stack, ctx.random_cases(cell), STACK_SIZE), DTYPE)
-    r = _row_norms(grads[: len(mags)], spec.kind)
+    r = _row_norms(grads[: len(mags)], stack.targets, spec.kind)
     base = r[0]
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = r[1:] / base[None, :]

@@ -17,9 +17,6 @@ KNOWN_GAPS: dict[tuple[str, str], str] = {
         "padding evaluates the loss only jit-compiled in float64, where XLA simplifies the masked "
         "nan · 0 to 0, so the value comes out right; the same loss returns nan when called eagerly "
         "and, compiled, in bfloat16 (finite catches it there)"),
-    ("properties-clipped_logits", "live-gradient"): (
-        "live-gradient takes the row's infinity norm, so a row whose label and competitor logits "
-        "get exactly zero gradient stays 'alive' on a bystander class's ~e^-10 gradient"),
 }
 
 
