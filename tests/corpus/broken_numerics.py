@@ -91,3 +91,11 @@ def focal_small_gamma_power(z: jax.Array, y: jax.Array, gamma: float) -> jax.Arr
         kind="binary", reference="bce")
 def kinked_stable_bce(z: jax.Array, y: jax.Array) -> jax.Array:
     return jnp.mean(jnp.maximum(z, 0.0) - z * y + jnp.log1p(jnp.exp(-jnp.abs(z))))
+
+
+@broken(F, "finite", "label smoothing's uniform term as ε·mean_c(log p): the row sum of C log-probabilities "
+        "overflows at logits near the dtype's largest value although the loss itself fits",
+        kind="categorical", reference="smoothed_ce", params={"epsilon": 0.1})
+def smoothing_sum_overflows(z: jax.Array, y: jax.Array, epsilon: float) -> jax.Array:
+    logp = jax.nn.log_softmax(z, axis=-1)
+    return jnp.mean((1.0 - epsilon) * -_pick(logp, y) - epsilon * jnp.mean(logp, axis=-1))

@@ -124,7 +124,9 @@ def ce_probabilities_guarded(p: jax.Array, y: jax.Array) -> jax.Array:
          kind="categorical", reference="smoothed_ce", params={"epsilon": 0.1})
 def smoothed_ce_by_hand(z: jax.Array, y: jax.Array, epsilon: float) -> jax.Array:
     logp = jax.nn.log_softmax(z, axis=-1)
-    return jnp.mean((1.0 - epsilon) * -_pick(logp, y) - epsilon * jnp.mean(logp, axis=-1))
+    # mean_c as Σ_c (ε/C)·log p_c: scaling before the sum keeps C large terms from overflowing
+    uniform = jnp.sum((epsilon / logp.shape[-1]) * logp, axis=-1)
+    return jnp.mean((1.0 - epsilon) * -_pick(logp, y) - uniform)
 
 
 @correct("logistic loss as (1 - y)·z + softplus(-z) with jax.nn.softplus", kind="binary",

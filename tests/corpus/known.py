@@ -22,13 +22,4 @@ KNOWN_GAPS: dict[tuple[str, str], str] = {
 
 #: (entry id, check) pairs where a check flags a correct loss: reported to the check's owner. The
 #: loss must pass every other check; if one of these fires the test is marked xfail with the reason.
-_MEAN_OVERFLOW = (
-    "finite judges a batch mean finite whenever the mean is representable, but jnp.mean sums "
-    "first: at |z| near the dtype's largest value (1e38 in float32/bfloat16, 1.8e308 in float64) "
-    "the sum of N per-example values overflows although their mean does not")
-KNOWN_FALSE_ALARMS: dict[tuple[str, str], str] = {
-    ("correct-smoothed_ce_by_hand", "finite"): _MEAN_OVERFLOW,
-    ("correct-bce_softplus_form", "finite"): _MEAN_OVERFLOW,
-    ("correct-kl_double_where", "finite"): _MEAN_OVERFLOW,
-    ("correct-soft_target_ce", "finite"): _MEAN_OVERFLOW,
-}
+KNOWN_FALSE_ALARMS: dict[tuple[str, str], str] = {}
