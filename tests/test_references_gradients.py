@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 import scipy.special as sp
 
+from _closeness import assert_close, close
 from lossguard.references import REFERENCES, softmax_ce_hessian
 
 BCE, CE, SM = REFERENCES["bce"], REFERENCES["categorical_ce"], REFERENCES["smoothed_ce"]
@@ -23,21 +24,6 @@ FB, FM, KL = REFERENCES["focal_binary"], REFERENCES["focal_multiclass"], REFEREN
 N, C = 6, 4
 RTOL_AD, ATOL_AD = 1e-11, 1e-15  # closed form vs autodiff, both float64 (few-ULP agreement)
 TINY = 1e-300  # below the smallest normal double 2^-1022 (IEEE-754) compare absolutely
-
-
-def close(actual: object, expected: object, rtol: float, atol: float = 0.0) -> bool:
-    """|a − e| ≤ atol + rtol·|e| everywhere (equal infinities pass, any nan fails)."""
-    a, e = np.asarray(actual, np.float64), np.asarray(expected, np.float64)
-    if a.shape != e.shape:
-        return False
-    with np.errstate(invalid="ignore"):
-        ok = (a == e) | (np.abs(a - e) <= atol + rtol * np.abs(e))
-    return bool(np.all(ok))
-
-
-def assert_close(actual: object, expected: object, rtol: float, atol: float = 0.0) -> None:
-    shown = f"\nactual   {np.asarray(actual)!r}\nexpected {np.asarray(expected)!r}"
-    assert close(actual, expected, rtol, atol), shown
 
 
 def leaf_case(name: str, inputs: str, target: str, scale: float,

@@ -17,26 +17,12 @@ import scipy.special as sp
 import scipy.stats
 from sklearn.metrics import log_loss
 
+from _closeness import assert_close, close
 from lossguard.references import REFERENCES
 
 BCE, CE, SM = REFERENCES["bce"], REFERENCES["categorical_ce"], REFERENCES["smoothed_ce"]
 FB, FM, KL = REFERENCES["focal_binary"], REFERENCES["focal_multiclass"], REFERENCES["kl_divergence"]
 N, C = 7, 4
-
-
-def close(actual: object, expected: object, rtol: float, atol: float = 0.0) -> bool:
-    """|a − e| ≤ atol + rtol·|e| everywhere (equal infinities pass, any nan fails)."""
-    a, e = np.asarray(actual, np.float64), np.asarray(expected, np.float64)
-    if a.shape != e.shape:
-        return False
-    with np.errstate(invalid="ignore"):
-        ok = (a == e) | (np.abs(a - e) <= atol + rtol * np.abs(e))
-    return bool(np.all(ok))
-
-
-def assert_close(actual: object, expected: object, rtol: float, atol: float = 0.0) -> None:
-    shown = f"\nactual   {np.asarray(actual)!r}\nexpected {np.asarray(expected)!r}"
-    assert close(actual, expected, rtol, atol), shown
 
 
 @pytest.fixture
