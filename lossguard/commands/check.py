@@ -6,7 +6,7 @@ import argparse
 import sys
 
 from ..report import progress_for, write_reports
-from ..report.text import render
+from ..report.text import render, wants_colour
 from ..runner import run
 from ._target import add_target_options, spec_from_args
 
@@ -27,6 +27,6 @@ def main(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, args.target)
     with progress_for(sys.stdout) as update:
         result = run(spec, seed=args.seed, effort=args.effort, only=args.only, target=args.target, progress=update)
-    sys.stdout.write(render(result, color=sys.stdout.isatty()))
+    sys.stdout.write(render(result, color=wants_colour(sys.stdout)))
     write_reports(result, json_path=args.json, markdown_path=args.markdown)
     return result.exit_code
