@@ -75,14 +75,13 @@ def test_broken_loss_is_caught(entry: Entry) -> None:
 
 #: correct losses whose quick battery runs in the default suite: one per style family (numpy with a
 #: declared grad, custom_vjp, probability inputs, soft targets, binary with a parameter, KL, sum
-#: reduction, no reference, ignore label, jax.nn helpers, binary focal). The default suite's budget (90 s on the 2-core machine)
+#: reduction, no reference, ignore label). The default suite's budget (90 s on the 2-core machine)
 #: does not hold all of them; the others run at quick effort under ``-m slow``, and every correct
 #: loss runs at the default effort there too.
 EVERYDAY_CORRECT = frozenset({
     "correct-ce_numpy_with_grad", "correct-ce_custom_vjp", "correct-ce_probabilities_guarded",
     "correct-soft_target_ce", "correct-bce_log_sigmoid_weighted", "correct-kl_double_where",
-    "correct-ce_summed", "correct-brier_score", "correct-ce_ignore_label", "correct-ce_with_jax_nn",
-    "correct-focal_binary_log_space",
+    "correct-ce_summed", "correct-brier_score", "correct-ce_ignore_label",
 })
 
 

@@ -5,15 +5,15 @@ catch it; every correct loss is written in a different style and must pass the w
 battery. ``tests/test_corpus.py`` asserts both; ``benchmarks/detection.py`` counts them.
 
 Modules, by kind of bug: ``broken_numerics`` (extremes), ``broken_masks`` (ignore label and
-padded examples, −inf logits of masked classes), ``broken_conventions`` (smoothing, weighting, targets), ``broken_reductions`` (batch),
-``broken_custom_grad`` (jax.custom_vjp and declared numpy gradients), ``broken_precision``
-(float16/bfloat16), ``broken_properties`` (invariances, sign, determinism, dead gradients,
-properness); ``correct_losses`` holds the correct ones.
+padded examples, −inf logits of masked classes), ``broken_conventions`` (smoothing, weighting,
+targets), ``broken_reductions`` (batch), ``broken_custom_grad`` (jax.custom_vjp and declared
+numpy gradients), ``broken_precision`` (float16/bfloat16), ``broken_properties`` (invariances,
+sign, determinism, dead gradients, properness); ``correct_losses`` holds the correct ones.
 
 Example:
-    >>> from corpus import BROKEN
-    >>> entry = BROKEN[0]
-    >>> entry.catches, entry.spec().kind   # doctest: +SKIP
+    >>> from corpus import by_id
+    >>> entry = by_id("numerics-log_of_softmax")
+    >>> entry.catches, entry.spec().kind
     (('finite',), 'categorical')
 """
 

@@ -93,8 +93,8 @@ def kinked_stable_bce(z: jax.Array, y: jax.Array) -> jax.Array:
     return jnp.mean(jnp.maximum(z, 0.0) - z * y + jnp.log1p(jnp.exp(-jnp.abs(z))))
 
 
-@broken(F, "finite", "label smoothing's uniform term as ε·mean_c(log p): the row sum of C log-probabilities "
-        "overflows at logits near the dtype's largest value although the loss itself fits",
+@broken(F, "finite", "label smoothing's uniform term as ε·mean_c(log p): the row sum of C "
+        "log-probabilities overflows at logits near the dtype's largest value although the loss itself fits",
         kind="categorical", reference="smoothed_ce", params={"epsilon": 0.1})
 def smoothing_sum_overflows(z: jax.Array, y: jax.Array, epsilon: float) -> jax.Array:
     logp = jax.nn.log_softmax(z, axis=-1)

@@ -108,7 +108,8 @@ def clipped_probability(z: jax.Array, y: jax.Array) -> jax.Array:
 
 
 @broken(F, ("live-gradient", "reference"), "logits clipped to [-10, 10] 'for stability': beyond "
-        "it the gradient is zero although the loss is still wrong", kind="categorical", reference="categorical_ce")
+        "it the gradient is zero although the loss is still wrong", kind="categorical",
+        reference="categorical_ce")
 def clipped_logits(z: jax.Array, y: jax.Array) -> jax.Array:
     zz = jnp.clip(z, -10.0, 10.0)
     return -jnp.mean(_pick(jax.nn.log_softmax(zz, axis=-1), y))
