@@ -38,7 +38,7 @@ from hypothesis import strategies as st
 from hypothesis.errors import Flaky, HypothesisException
 
 from .cases import CaseStack, Cell
-from .checks._compare import Mismatch, replay
+from .checks._compare import Mismatch, examples_from, replay
 from .errors import LossCallError
 from .evaluate import NoGradient
 from .result import CheckResult, Example
@@ -205,23 +205,11 @@ def mismatch_examples(
     ``calls`` are (name, stack) pairs whose case k was evaluated; ``relation`` states what should
     hold between them (``"a == b"``).
     """
-    out = []
-    first = calls[0][1]
-    for k in m.order()[:most]:
+    def replay_of(k: int) -> str:
         lines = [f"{name} = {replay(spec, s.predictions[k], s.targets[k])}" for name, s in calls]
-        out.append(Example(
-            what=what,
-            predictions=first.predictions[k],
-            targets=first.targets[k],
-            got=m.got[k],
-            expected=m.expected[k],
-            abs_err=float(m.case_abs[k]),
-            rel_err=float(m.case_rel[k]),
-            allowance=float(np.max(m.atol[k])) if m.atol.ndim else float(m.atol),
-            note=first.note(int(k)),
-            replay="\n".join(lines) + f"\n# expected {relation}",
-        ))
-    return out
+        return "\n".join(lines) + f"\n# expected {relation}"
+
+    return examples_from(m, spec, calls[0][1], what, most=most, replay_of=replay_of)
 
 
 @dataclass

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
@@ -90,8 +91,12 @@ def examples_from(
     dtype: str = "float64",
     most: int = 3,
     only_failed: bool = True,
+    replay_of: Callable[[int], str] | None = None,
 ) -> list[Example]:
-    """The worst ``most`` cases of a comparison as :class:`Example` records."""
+    """The worst ``most`` cases of a comparison as :class:`Example` records.
+
+    ``replay_of(k)`` overrides the replay text of case k (default: one call of the loss).
+    """
     out = []
     for k in m.order(only_failed)[:most]:
         out.append(
@@ -105,7 +110,7 @@ def examples_from(
                 rel_err=float(m.case_rel[k]),
                 allowance=float(np.max(m.atol[k])) if m.atol.ndim else float(m.atol),
                 note=stack.note(int(k)),
-                replay=replay(spec, stack.predictions[k], stack.targets[k], dtype),
+                replay=replay_of(int(k)) if replay_of else replay(spec, stack.predictions[k], stack.targets[k], dtype),
             )
         )
     return out
