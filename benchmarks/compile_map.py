@@ -18,6 +18,8 @@ from collections import defaultdict
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 
@@ -41,11 +43,12 @@ def main() -> None:
     current = [""]
     original = jax_loss.JaxAdapter._run
 
-    def recording(self: Any, op: str, arrays: list[Any], dtype: str, float_mask: list[bool]) -> Any:
+    def recording(self: Any, op: str, arrays: list[Any], dtype: str, float_mask: list[bool], **kw: Any) -> Any:
         k = arrays[0].shape[0]
-        shape = (jax_loss.bucket(k) if self.vectorised else 1,) + tuple(arrays[0].shape[1:])
+        shape = ((jax_loss.bucket(k, int(np.prod(arrays[0].shape[1:]))) if self.vectorised else 1,)
+                 + tuple(arrays[0].shape[1:]))
         first_needed.setdefault((id(self), op, dtype, shape), current[0])
-        return original(self, op, arrays, dtype, float_mask)
+        return original(self, op, arrays, dtype, float_mask, **kw)
 
     jax_loss.JaxAdapter._run = recording  # type: ignore[method-assign]
     try:

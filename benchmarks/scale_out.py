@@ -1,29 +1,56 @@
 """Scale-out: a suite of 6 losses under pytest with ``-n 1`` and ``-n 2`` (pytest-xdist).
 
-Three ways of writing the suite are timed, each in a generated test module in a temporary
-directory:
+The headline is the plugin style under xdist's default distribution. Each style is a generated
+test module in a temporary directory:
 
 - ``plugin``: ``test_x = battery(loss, **declaration)`` per loss (one item per check), default
-  xdist distribution (``--dist load``);
-- ``plugin+group``: the same with ``marks=[pytest.mark.xdist_group(<loss>)]`` and
-  ``--dist loadgroup``, so all items of one loss go to one worker;
-- ``plain``: one test function per loss calling ``lossguard.run`` (no plugin API).
+  distribution (``--dist load``: items go to whichever worker is free, so one declaration's
+  items can be split between the workers; each worker runs only the checks it receives);
+- ``plugin-loadgroup``: the same module with ``--dist loadgroup``: the plugin gives each
+  declaration's items one ``xdist_group``, so one worker runs all of a declaration;
+- ``plugin-worksteal``: the same module with ``--dist worksteal`` (each worker starts on one
+  contiguous half of the items, then takes items from the other's queue when idle);
+- ``plain``: one test function per loss calling ``lossguard.run`` (no plugin API);
+- ``startup``: the plugin module with every item deselected: what a run costs before any check
+  (interpreter, pytest and its plugins, xdist workers, JAX import, collection).
+
+Below the table: the best speed-up the CPU time allows (``-n 1`` already keeps more than one
+core busy, since XLA compiles in background threads while checks run), and the start-up costs.
+
+``--env NAME=VALUE`` (repeatable) adds the plugin rows again with these variables set in the
+environment of both runs: an opt-in a user could make (such as JAX's persistent compilation
+cache, ``JAX_COMPILATION_CACHE_DIR``); lossguard never sets them itself. Those rows start
+with one untimed ``-n 1`` run, so that a cache they turn on is warm for every timed run.
 
 Wall time is that of the whole ``python -m pytest`` process (collection, worker start-up and
-all). Target: ``-n 2`` at least 1.6× faster than ``-n 1`` on the 6-loss suite.
+all); CPU time is user + system time of that process and all its workers. A run without xdist
+(``no -n``) is timed too, for reference. The runs alternate (no -n, 1, 2, no -n, 1, 2, …) so
+that a change in the machine's load falls on all; each figure is the median of ``--repeats``
+runs. Target: ``-n 2`` at least 1.6× faster than ``-n 1`` on the 6-loss suite. The machine is
+shared: the load average is printed at the start and after each style, and a ratio is only
+meaningful within one run of this script.
 
-    python benchmarks/scale_out.py [--repeats 1] [--effort default]
+    python benchmarks/scale_out.py [--repeats 1] [--effort default] [--styles plugin,plain]
+        [--env JAX_COMPILATION_CACHE_DIR=/tmp/jax-cache --env JAX_PERSISTENT_CACHE_MIN_COMPILE_TIME_SECS=0]
 """
 
 from __future__ import annotations
 
 import argparse
+import os
+import resource
+import statistics
+import subprocess
 import sys
 import tempfile
 import textwrap
+import time
 from pathlib import Path
+from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+TARGET = 1.6
 
 #: (name in the generated module, where the loss comes from)
 LOSSES = (
@@ -35,6 +62,15 @@ LOSSES = (
     ("bce_weighted", "corpus:correct-bce_log_sigmoid_weighted"),
 )
 
+#: style → (module body kind, extra pytest arguments)
+STYLES = {
+    "plugin": ("plugin", []),
+    "plugin-loadgroup": ("plugin", ["--dist", "loadgroup"]),
+    "plugin-worksteal": ("plugin", ["--dist", "worksteal"]),
+    "plain": ("plain", []),
+    "startup": ("plugin", ["-k", "no_such_test"]),
+}
+
 _PRELUDE = '''
 import sys
 sys.path[:0] = [{bench!r}, {tests!r}]
@@ -42,6 +78,8 @@ import pytest
 import lossguard
 import speed_losses
 import corpus
+
+_EFFORT = {effort!r}
 
 
 def _loss(where):
@@ -53,16 +91,14 @@ def _loss(where):
 '''
 
 
-def _module(style: str) -> str:
+def _module(kind: str, effort: str) -> str:
     from _common import BENCH, ROOT
 
-    text = textwrap.dedent(_PRELUDE).format(bench=str(BENCH), tests=str(ROOT / "tests"))
-    if style.startswith("plugin"):
+    text = textwrap.dedent(_PRELUDE).format(bench=str(BENCH), tests=str(ROOT / "tests"), effort=effort)
+    if kind == "plugin":
         text += "from lossguard.pytest_plugin import battery\n\n"
         for name, where in LOSSES:
-            marks = f"[pytest.mark.xdist_group({name!r})]" if style == "plugin+group" else "[]"
-            text += (f"_fn, _decl = _loss({where!r})\n"
-                     f"test_{name} = battery(_fn, marks={marks}, **_decl)\n")
+            text += f"_fn, _decl = _loss({where!r})\ntest_{name} = battery(_fn, **_decl)\n"
     else:
         for name, where in LOSSES:
             text += (f"\ndef test_{name}():\n"
@@ -71,47 +107,103 @@ def _module(style: str) -> str:
     return text
 
 
+def _timed(cmd: list[str], cwd: Path, env: dict[str, str]) -> tuple[float, float, int, str]:
+    """(wall s, CPU s of the process and its workers, exit code, output) of one pytest run."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, env=env)
+    wall = time.perf_counter() - t0
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return wall, cpu, proc.returncode, proc.stdout + proc.stderr
+
+
+def _outcome(out: str) -> str:
+    return next((ln.strip("= ").split(" in ")[0] for ln in reversed(out.splitlines())
+                 if " in " in ln and any(w in ln for w in ("passed", "failed", "deselected", "no tests"))), "?")
+
+
+def _load() -> str:
+    return " ".join(f"{x:.2f}" for x in os.getloadavg())
+
+
+def measure(path: Path, extra: list[str], effort: str, repeats: int, env: dict[str, str],
+            warm_up: bool = False, ns: tuple[int, ...] = (1, 2)) -> dict[str, Any]:
+    """Median wall and CPU seconds of ``-n N`` runs (N in ``ns``, alternating) of the module at
+    ``path``; ``-n 0`` is a run without xdist."""
+    walls: dict[int, list[float]] = {n: [] for n in ns}
+    cpus: dict[int, list[float]] = {n: [] for n in ns}
+    outcome = "?"
+    order = ([ns[0]] if warm_up else []) + list(ns) * repeats
+    for i, n in enumerate(order):
+        cmd = [sys.executable, "-m", "pytest", str(path), "-q", "-p", "no:cacheprovider",
+               "-o", "addopts=", "--rootdir", str(path.parent), "-n", str(n),
+               f"--lossguard-effort={effort}", *extra]
+        wall, cpu, code, out = _timed(cmd, path.parent, env)
+        if code not in (0, 1, 5):  # 1: some check failed, 5: none selected; the timing stands
+            raise SystemExit(f"{path.name} -n {n} failed ({code}):\n{out[-3000:]}")
+        if warm_up and i == 0:
+            continue
+        walls[n].append(wall)
+        cpus[n].append(cpu)
+        outcome = _outcome(out)
+    out: dict[str, Any] = {"outcome": outcome}
+    for n in ns:
+        out[f"w{n}"], out[f"c{n}"] = statistics.median(walls[n]), statistics.median(cpus[n])
+    out["speedup"] = out["w1"] / out["w2"]
+    return out
+
+
 def main() -> None:
-    from _common import header, median_time, run_subprocess, table
+    from _common import header, table
 
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=1)
     parser.add_argument("--effort", default="default", choices=("quick", "default", "thorough"))
+    parser.add_argument("--styles", default="startup,plugin,plugin-loadgroup,plain",
+                        help=f"comma-separated, from: {', '.join(STYLES)}")
+    parser.add_argument("--env", action="append", default=[], metavar="NAME=VALUE",
+                        help="also time the plugin styles with these environment variables set")
     args = parser.parse_args()
-    header(f"scale-out: 6 losses under pytest -n 1 and -n 2 (effort {args.effort})")
-    rows = []
+    styles = [s.strip() for s in args.styles.split(",") if s.strip()]
+    unknown = [s for s in styles if s not in STYLES]
+    if unknown:
+        raise SystemExit(f"--styles: unknown {unknown}; expected some of {list(STYLES)}")
+    header(f"scale-out: 6 losses under pytest -n 1 and -n 2 (effort {args.effort}, "
+           f"{args.repeats} alternating run(s) each)")
+    base_env = dict(os.environ)
+    extra_env = dict(item.split("=", 1) for item in args.env)
+    runs = [(s, False) for s in styles]
+    if extra_env:
+        runs += [(s, True) for s in styles if STYLES[s][0] == "plugin" and s != "startup"]
+    rows, figures = [], {}
     with tempfile.TemporaryDirectory(prefix="lossguard-scale-") as tmp:
-        for style in ("plugin", "plugin+group", "plain"):
-            path = Path(tmp) / f"test_suite_{style.replace('+', '_')}.py"
-            body = _module(style)
-            if style == "plain":
-                body = body.replace("import corpus\n", f"import corpus\n_EFFORT = {args.effort!r}\n", 1)
-            path.write_text(body)
-            times: dict[int, float] = {}
-            outcomes: dict[int, str] = {}
-            for n in (1, 2):
-                cmd = [sys.executable, "-m", "pytest", str(path), "-q", "-p", "no:cacheprovider",
-                       "-o", "addopts=", "--rootdir", tmp, "-n", str(n),
-                       f"--lossguard-effort={args.effort}"]
-                if style == "plugin+group":
-                    cmd += ["--dist", "loadgroup"]
-
-                def once() -> float:
-                    seconds, code, out = run_subprocess(cmd, cwd=Path(tmp))
-                    if code not in (0, 1):  # 1: some check failed; the timing still stands
-                        raise SystemExit(f"{style} -n {n} failed ({code}):\n{out[-3000:]}")
-                    outcome[n] = next((ln.strip("= ") for ln in reversed(out.splitlines())
-                                       if " in " in ln and ("passed" in ln or "failed" in ln)), "?")
-                    return seconds
-
-                outcome: dict[int, str] = {}
-                times[n], _ = median_time(once, args.repeats)
-                outcomes[n] = outcome[n]
-            speedup = times[1] / times[2]
-            rows.append([style, times[1], times[2], speedup, "yes" if speedup >= 1.6 else "no",
-                         outcomes[2].split(" in ")[0]])
-    table(["suite style", "-n 1 s", "-n 2 s", "speed-up", "≥ 1.6×", "outcome (-n 2)"], rows)
-
+        for style, with_env in runs:
+            kind, extra = STYLES[style]
+            path = Path(tmp) / f"test_suite_{kind}.py"
+            if not path.exists():
+                path.write_text(_module(kind, args.effort))
+            env = {**base_env, **(extra_env if with_env else {})}
+            label = f"{style} + {' '.join(args.env)}" if with_env else style
+            f = measure(path, extra, args.effort, args.repeats, env, warm_up=with_env, ns=(0, 1, 2))
+            figures[label] = f
+            met = "-" if style == "startup" else "yes" if f["speedup"] >= TARGET else "no"
+            rows.append([label, f["w0"], f["w1"], f["w2"], f["speedup"], met,
+                         f["c1"], f["c2"], f["outcome"], _load()])
+    table(["suite style", "no -n s", "-n 1 s", "-n 2 s", "speed-up", f"≥ {TARGET}×", "-n 1 CPU s",
+           "-n 2 CPU s", "outcome (-n 2)", "load after"], rows)
+    if "plugin" in figures:
+        f = figures["plugin"]
+        print(f"headline (plugin, --dist load): -n 1 {f['w1']:.1f} s, -n 2 {f['w2']:.1f} s, "
+              f"speed-up {f['speedup']:.2f}×; target ≥ {TARGET}× met: {'yes' if f['speedup'] >= TARGET else 'no'}")
+        cores = os.cpu_count() or 2
+        print(f"ceiling from CPU: -n 1 used {f['c1']:.1f} CPU s in {f['w1']:.1f} s ({f['c1'] / f['w1']:.2f} cores); "
+              f"on {cores} cores -n 2 cannot take less than {f['c1'] / cores:.1f} s without doing less work: "
+              f"at most {f['w1'] * cores / f['c1']:.2f}×")
+        if "startup" in figures:
+            s0 = figures["startup"]
+            print(f"start-up: -n 1 spends {s0['w1']:.1f} s and -n 2 {s0['w2']:.1f} s before any check "
+                  f"({s0['c1']:.1f} and {s0['c2']:.1f} CPU s)")
 
 if __name__ == "__main__":
     main()

@@ -279,7 +279,9 @@ def perturbed(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS
     steps = step_ladder(h0, levels)  # (J, K, D)
     s = np.moveaxis(steps, 0, -1)[:, :, None, :] * np.array([1.0, -1.0])[None, None, :, None]
     s = s.reshape(s.shape + (1,) * (v.ndim - 2))
-    return z[:, None, None, None] + s * v[:, :, None, None]
+    out = s * v[:, :, None, None]  # one full-size array, the sum taken in place: z + s·v
+    out += z[:, None, None, None]
+    return out
 
 
 def point_stacks(stack: CaseStack, v: np.ndarray, h0: np.ndarray,

@@ -6,6 +6,12 @@ handful of shapes (:func:`shape_menu`) and evaluates K cases of one shape at onc
 (K, N, D) — and targets (K, N) integer labels, (K, N, C) simplex rows, or binary targets shaped
 like the predictions. Canonical values are float64; checks cast them to the dtype under test.
 
+How many cases a stack holds follows the size of a case (:mod:`lossguard._budget`): at the
+menu's shapes every check keeps its full count, one case per (pattern, magnitude) of the ladder;
+once N·C is large (a (4096, 1000) case holds 4096 rows of 1000 logits) fewer random cases are
+drawn and the ladder is *packed*: one case holds several (pattern, magnitude) pairs, its rows
+taking them in turn, so every pair still appears while the number of cases stays bounded.
+
 All randomness flows from a ``numpy.random.Generator`` the caller seeds.
 """
 
@@ -16,13 +22,20 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .ladders import PATTERNS, ladder_rows, magnitudes
+from ._budget import case_count
+from .ladders import PATTERNS, ladder_rows, magnitudes, mixed_scales, thin_rungs
 from .options import EFFORTS
 from .spec import LossSpec
 
 __all__ = ["Cell", "CaseStack", "EFFORTS", "shape_menu", "cases_per_cell", "target_domain",
-           "random_stack", "ladder_stack", "to_inputs", "concat", "draw_targets"]
+           "random_stack", "ladder_stack", "pack_rows", "ladder_case_count", "to_inputs", "concat", "draw_targets",
+           "LADDER_LEAST"]
 
+#: Fewest cases the shared ladder is packed into at the largest shapes: one, holding every
+#: (pattern, magnitude) pair. Its comparisons are allowed the rounding of its largest |z| (1e4);
+#: the tight allowances at moderate logits come from the random cases. Every check that uses
+#: the shared cases evaluates each one several times, so one case fewer is a quarter of their cost.
+LADDER_LEAST = 1
 
 
 @dataclass(frozen=True)
@@ -37,6 +50,10 @@ class Cell:
         if self.c is not None:
             return (self.n, self.c)
         return (self.n,) if self.d is None else (self.n, self.d)
+
+    def elements(self) -> int:
+        """Prediction elements of one case: N·C (binary: N or N·D)."""
+        return int(np.prod(self.pred_shape()))
 
     def __str__(self) -> str:
         return "x".join(str(s) for s in self.pred_shape())
@@ -80,9 +97,18 @@ def shape_menu(spec: LossSpec, effort: str = "default") -> list[Cell]:
     return cells[:1] if effort == "quick" else cells
 
 
-def cases_per_cell(effort: str = "default") -> int:
-    """How many random cases each cell gets."""
-    return {"quick": 16, "default": 48, "thorough": 256}[effort]
+def cases_per_cell(effort: str = "default", cell: Cell | None = None) -> int:
+    """How many random cases each cell gets: 16, 48 or 256 by effort, fewer for a large ``cell``.
+
+    With ``cell``, :func:`lossguard._budget.case_count` bounds the count by the cell's size (the
+    menu's shapes keep the full count; a (4096, 1000) cell gets 2).
+
+    Example:
+        >>> cases_per_cell("default"), cases_per_cell("default", Cell(4096, 1000))
+        (48, 2)
+    """
+    want = {"quick": 16, "default": 48, "thorough": 256}[effort]
+    return want if cell is None else case_count(want, cell.elements())
 
 
 def target_domain(spec: LossSpec) -> str:
@@ -151,7 +177,8 @@ def random_stack(
     """k random cases: logits at a per-case scale drawn log-uniformly, ties mixed in."""
     shape = (k,) + cell.pred_shape()
     scales = 10.0 ** rng.uniform(*log10_scale, size=k)
-    z = rng.standard_normal(shape) * scales.reshape((k,) + (1,) * (len(shape) - 1))
+    z = rng.standard_normal(shape)
+    z *= scales.reshape((k,) + (1,) * (len(shape) - 1))  # in place: no second array of the stack's size
     if cell.c is not None and k >= 4:
         # a quarter of the cases get an exact tie between two classes in every row
         tie = np.arange(k) % 4 == 3
@@ -159,6 +186,50 @@ def random_stack(
     targets = draw_targets(spec, cell, rng, k, domain=domain)
     notes = [f"random, logit scale {s:.3g}" for s in scales]
     return CaseStack(to_inputs(spec, z), targets, cell, notes)
+
+
+def ladder_case_count(cell: Cell, pairs: int, least: int = LADDER_LEAST) -> int:
+    """How many cases a ladder of ``pairs`` (pattern, magnitude) pairs gets at ``cell``: one per
+    pair while the budget allows (the menu's shapes), else fewer, never below ``least``."""
+    return case_count(pairs, cell.elements(), least=least)
+
+
+def _loss_size(pair: tuple[str, float]) -> tuple[float, float]:
+    """A sort key: roughly how large the loss of rows of this (pattern, M) is (right ≈ 0, equal ≈
+    ln C, huge and mixed ≈ M, wrong ≈ 2M for a softmax loss), then M."""
+    pattern, m = pair
+    return {"right": 0.0, "equal": 1.0, "wrong": 2.0 * m}.get(pattern, m), m
+
+
+def _cut(idx: list[int], k: int, n: int) -> list[np.ndarray]:
+    """``idx`` cut into ``k`` consecutive groups (more if a group would exceed ``n`` rows)."""
+    if not idx:
+        return []
+    return [g for g in np.array_split(np.asarray(idx), min(max(k, -(-len(idx) // n)), len(idx))) if g.size]
+
+
+def _pattern_rows(spec: LossSpec, cell: Cell, rng: np.random.Generator, y: np.ndarray, pattern: str,
+                  m: float) -> np.ndarray:
+    """Logits for the targets ``y`` (some rows of a case of ``cell``) following ``pattern`` at M."""
+    if cell.c is not None:
+        labels = y if spec.kind == "categorical" else np.argmax(y, axis=-1)
+        return ladder_rows(rng, labels, cell.c, pattern, m)
+    # binary: the sign agrees with the target for "right", disagrees for "wrong"
+    sign = np.where(y >= 0.5, 1.0, -1.0)
+    if pattern == "right":
+        return sign * m
+    if pattern == "wrong":
+        return -sign * m
+    if pattern == "equal":
+        return np.full(y.shape, m)
+    if pattern == "huge":
+        z = rng.standard_normal(y.shape)
+        z.reshape(-1)[rng.integers(0, z.size)] = m
+        return z
+    if pattern == "mixed":
+        signs = np.where(rng.random(y.size) < 0.5, -1.0, 1.0)
+        return (signs * mixed_scales(rng, m, y.size)).reshape(y.shape)
+    raise ValueError(f"pattern={pattern!r}: expected one of {PATTERNS}; try 'wrong'")
 
 
 def ladder_stack(
@@ -169,45 +240,94 @@ def ladder_stack(
     mags: np.ndarray | None = None,
     patterns: Sequence[str] = PATTERNS,
     domain: str = "soft",
+    cases: int | None = None,
+    order: str = "rung",
+    dtypes: Sequence[str] | None = None,
+    apart_above: float | None = None,
 ) -> CaseStack:
-    """One case per (pattern, magnitude): the extreme-logit ladder for this cell."""
+    """The extreme-logit ladder for this cell: every (pattern, magnitude) pair, in ``cases`` cases.
+
+    One case per pair when ``cases`` (default: :func:`ladder_case_count`) allows it — the layout
+    of the menu's small shapes. Otherwise the pairs are *packed*: listed by magnitude
+    (``order="rung"``) or by the size of the loss they produce (``order="loss"``, so that rows
+    whose true loss overflows share a case with each other, not with rows that must stay
+    finite), cut into ``cases`` consecutive groups, and each group fills one case, its rows
+    taking the group's pairs in turn. Packing needs N ≥ the pairs per case; where rows run out,
+    the magnitudes are thinned (:func:`~lossguard.ladders.thin_rungs`, keeping 0, the top and
+    the overflow rungs of ``dtypes``). With ``apart_above``, the pairs whose rough loss size
+    (right 0, equal 1, huge and mixed M, wrong 2M) exceeds it are packed in a case of their
+    own: a packed case must not mix rows whose loss overflows a dtype with rows whose mean,
+    diluted by them, still fits (the overflowing rows would be judged through the mean).
+
+    Example:
+        >>> from lossguard import declare
+        >>> spec = declare(lambda z, y: z.mean(), kind="categorical")
+        >>> small, large = (ladder_stack(spec, c, np.random.default_rng(0)) for c in (Cell(16, 10), Cell(4096, 1000)))
+        >>> len(small), len(large)
+        (55, 1)
+    """
     mags = magnitudes("float64") if mags is None else np.asarray(mags, dtype=np.float64)
+    n_pairs = len(mags) * len(patterns)
+    k = ladder_case_count(cell, n_pairs) if cases is None else max(int(cases), 1)
     preds, targs, notes = [], [], []
-    for pattern in patterns:
-        for m in mags:
+    if k >= n_pairs:
+        for pattern in patterns:
+            for m in mags:
+                y = draw_targets(spec, cell, rng, 1, domain=domain)[0]
+                preds.append(_pattern_rows(spec, cell, rng, y, pattern, float(m)))
+                targs.append(y)
+                notes.append(f"ladder {pattern} |z|={m:.3g}")
+        z = np.stack(preds)
+    else:
+        if -(-n_pairs // k) > cell.n:  # more pairs per case than rows: thin the magnitudes
+            mags = thin_rungs(mags, max(k * cell.n // len(patterns), 1), dtypes)
+            k = max(k, -(-len(mags) * len(patterns) // cell.n))
+        pairs = [(p, float(m)) for m in mags for p in patterns]
+        if order == "loss":
+            pairs.sort(key=_loss_size)
+        big = [apart_above is not None and _loss_size(pm)[0] > apart_above for pm in pairs]
+        over, rest = [i for i, b in enumerate(big) if b], [i for i, b in enumerate(big) if not b]
+        k_over = 1 if over else 0
+        groups = _cut(rest, max(k - k_over, 1), cell.n) + _cut(over, k_over, cell.n)
+        z = np.empty((len(groups),) + cell.pred_shape())  # filled in place: large cases are not copied
+        for g, group in enumerate(groups):
             y = draw_targets(spec, cell, rng, 1, domain=domain)[0]
-            if cell.c is not None:
-                if spec.kind == "categorical":
-                    labels = y
-                else:
-                    labels = np.argmax(y, axis=-1)
-                mm = m if pattern != "mixed" else m * 10.0 ** rng.uniform(-6, 0, size=cell.n)
-                z = ladder_rows(rng, labels, cell.c, pattern, mm)
-            else:
-                # binary: the sign agrees with the target for "right", disagrees for "wrong"
-                sign = np.where(y >= 0.5, 1.0, -1.0)
-                if pattern == "right":
-                    z = sign * m
-                elif pattern == "wrong":
-                    z = -sign * m
-                elif pattern == "equal":
-                    z = np.full(cell.pred_shape(), m)
-                elif pattern == "huge":
-                    z = rng.standard_normal(cell.pred_shape())
-                    z.reshape(-1)[rng.integers(0, z.size)] = m
-                else:
-                    z = rng.standard_normal(cell.pred_shape()) * 10.0 ** rng.uniform(
-                        -3, np.log10(max(m, 1e-3)) + 1e-12, size=cell.pred_shape())
-            preds.append(z)
+            turn = np.arange(cell.n) % len(group)  # row i takes the group's pair i mod G
+            for j, i in enumerate(group):
+                rows = np.flatnonzero(turn == j)
+                z[g, rows] = _pattern_rows(spec, cell, rng, y[rows], *pairs[i])
             targs.append(y)
-            notes.append(f"ladder {pattern} |z|={m:.3g}")
-    p = to_inputs(spec, np.stack(preds))
-    return CaseStack(p, np.stack(targs), cell, notes)
+            notes.append("ladder packed, rows in turn: " + ", ".join(f"{p} |z|={m:.3g}" for p, m in
+                                                                      (pairs[i] for i in group)))
+    return CaseStack(to_inputs(spec, z), np.stack(targs), cell, notes)
+
+
+def pack_rows(stack: CaseStack, k: int) -> CaseStack:
+    """``k`` cases whose rows take the cases of ``stack`` in turn: row r of case j is row r of
+    case (j + r) mod K. Every case of ``stack`` keeps rows in the result while k < K; a large
+    shape then costs k evaluations instead of K. ``stack`` itself when k ≥ K.
+
+    Example:
+        >>> s = CaseStack(np.arange(12.0).reshape(3, 4), np.zeros((3, 4)), Cell(4, d=None))
+        >>> pack_rows(s, 1).predictions.tolist()
+        [[0.0, 5.0, 10.0, 3.0]]
+    """
+    big = len(stack)
+    if k >= big:
+        return stack
+    n = stack.predictions.shape[1]
+    src = (np.arange(k)[:, None] + np.arange(n)[None, :]) % big  # (k, N): the case each row comes from
+    rows = np.broadcast_to(np.arange(n)[None, :], src.shape)
+    kinds = sorted(set(stack.notes)) if stack.notes else []
+    note = "rows in turn from: " + "; ".join(kinds) if kinds else "rows in turn"
+    return CaseStack(stack.predictions[src, rows], stack.targets[src, rows], stack.cell, [note] * k)
 
 
 def concat(stacks: Sequence[CaseStack]) -> CaseStack:
-    """Join stacks of the same cell."""
+    """Join stacks of the same cell (one stack is returned as it is: no copy of its arrays)."""
     first = stacks[0]
+    if len(stacks) == 1:
+        return CaseStack(first.predictions, first.targets, first.cell, list(first.notes) or [""] * len(first))
     return CaseStack(
         np.concatenate([s.predictions for s in stacks]),
         np.concatenate([s.targets for s in stacks]),

@@ -15,7 +15,7 @@ import numpy as np
 from .adapters import jax_loss
 from .adapters._base import Adapter, first_line
 from .adapters.numpy_loss import NumpyAdapter
-from .cases import CaseStack, random_stack, shape_menu
+from .cases import CaseStack, Cell, random_stack, shape_menu
 from .errors import LossCallError
 from .spec import LossSpec
 from .tolerance import DTYPES, unit_roundoff
@@ -69,6 +69,14 @@ class Evaluator:
             self.adapter = NumpyAdapter(spec.loss, spec.params, spec.grad)
             out_shape = self._probe_plain(stack)
         self._read_output(out_shape, stack)
+        if isinstance(self.adapter, jax_loss.JaxAdapter):
+            self.adapter.out_shape = self._out_shape
+
+    def _out_shape(self, pred_shape: tuple[int, ...]) -> tuple[int, ...]:
+        """The loss's output shape per case for predictions of ``pred_shape``."""
+        if self.output == "scalar":
+            return ()
+        return pred_shape if self.spec.kind == "binary" else pred_shape[:1]
 
     def _probe_torch(self, stack: CaseStack) -> tuple[int, ...] | None:
         """Torch is tried only when the loss's process already imported it (no import cost)."""
@@ -124,10 +132,7 @@ class Evaluator:
         return self.adapter.values(stack.predictions, stack.targets, dtype, eager=eager)
 
     def cotangent_shape(self, stack: CaseStack) -> tuple[int, ...]:
-        pred = stack.cell.pred_shape()
-        if self.output == "scalar":
-            return ()
-        return pred if self.spec.kind == "binary" else pred[:1]
+        return self._out_shape(stack.cell.pred_shape())
 
     def value_and_grad(
         self, stack: CaseStack, dtype: str = "float64", cotangent: np.ndarray | None = None
@@ -184,6 +189,19 @@ class Evaluator:
         if out not in DTYPES:
             return dtype
         return out if unit_roundoff(out) > unit_roundoff(dtype) else dtype
+
+    def prepare(self, plan: list[tuple[str, str, Cell]]) -> None:
+        """Start compiling what a battery will ask for — (operation, dtype, shape) with operation
+        ``"vg"`` or ``"jvp"`` — in the background (JAX adapter only; a no-op otherwise)."""
+        if not isinstance(self.adapter, jax_loss.JaxAdapter):
+            return
+        kind = self.spec.kind
+        jobs = []
+        for op, dtype, cell in plan:
+            pred = cell.pred_shape()
+            targ = pred[:1] if kind == "categorical" else pred
+            jobs.append((op, dtype, pred, targ, kind != "categorical"))
+        self.adapter.prepare(jobs)
 
     def describe(self) -> dict[str, Any]:
         return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction}

@@ -7,7 +7,8 @@ Each pattern places a magnitude ``M`` from :func:`magnitudes` into a row:
 - ``wrong``: z_t = −M, one other class +M (confidently wrong);
 - ``equal``: every class M (ties; value must be ln C for softmax CE whatever M);
 - ``huge``: one random class +M, others drawn at scale 1;
-- ``mixed``: rows of very different scales in one batch (each row its own M).
+- ``mixed``: rows of very different scales in one batch: row scales s = M·10^U(−6, 0), one
+  row at exactly M, each row's logits spread over [0, s].
 
 These feed the stacked case generator (``cases``), the stability checks, and the public
 Hypothesis strategies, so every generator of extremes lives here.
@@ -26,7 +27,7 @@ __all__ = ["magnitudes", "PATTERNS", "ladder_rows", "largest_finite", "smallest_
            "smallest_normal", "next_below_one", "round_to", "common_grid", "ulp", "wide_magnitudes",
            "profile_magnitudes", "probability_edges", "EDGE_STEPS", "approach", "probability_rows",
            "sparse_simplex_rows", "mask_non_targets", "round_down", "flush_subnormals",
-           "has_subnormals"]
+           "has_subnormals", "mixed_scales", "overflow_rungs", "thin_rungs"]
 
 PATTERNS = ("right", "wrong", "equal", "huge", "mixed")
 
@@ -63,7 +64,11 @@ def ladder_rows(
 ) -> np.ndarray:
     """Logit rows (N, C) for integer ``labels`` (N,) following ``pattern`` at ``magnitude``.
 
-    ``magnitude`` may be a scalar or one value per row (the ``mixed`` pattern uses that).
+    ``magnitude`` may be a scalar or one value per row. For ``mixed`` it is the top of the
+    rows' scales (:func:`mixed_scales`): each row is a standard normal draw mapped onto [0, s]
+    (its smallest logit 0, its largest exactly its scale s), so a row's loss stays within
+    s + ln C: the rows differ in scale, not in how wrong they are, and at the top of a dtype's
+    range no single row's loss overflows while the batch mean fits (that is ``wrong``'s job).
     Labels outside [0, C) (an ignore label) are treated as class 0 for placement.
     """
     n = labels.shape[0]
@@ -83,11 +88,38 @@ def ladder_rows(
         rows = rng.standard_normal((n, n_classes))
         rows[idx, rng.integers(0, n_classes, size=n)] = m
     elif pattern == "mixed":
-        scales = 10.0 ** rng.uniform(-3, np.log10(np.maximum(m, 1e-3)) + 1e-12, size=n)
-        rows = rng.standard_normal((n, n_classes)) * scales[:, None]
+        scales = mixed_scales(rng, m)
+        d = rng.standard_normal((n, n_classes))
+        lo, hi = d.min(axis=1, keepdims=True), d.max(axis=1, keepdims=True)
+        # (d − lo)/(hi − lo) spans [0, 1] with both ends exact (x − x = 0, x / x = 1 in IEEE arithmetic)
+        unit = (d - lo) / np.where(hi > lo, hi - lo, 1.0)
+        rows = unit * scales[:, None]
     else:
         raise ValueError(f"pattern={pattern!r}: expected one of {PATTERNS}; try 'wrong'")
     return rows
+
+
+def mixed_scales(rng: np.random.Generator, magnitude: float | np.ndarray, size: int | None = None) -> np.ndarray:
+    """Scales of very different size for the ``mixed`` pattern: M·10^U(−6, 0), one at exactly M.
+
+    ``magnitude`` is a scalar (give ``size``) or one top per row; the row with the largest top
+    gets its top exactly (a random row when all tops are equal), so a case always holds a row
+    at the ladder's rung and rows up to six decades below it (where a stabiliser shared by the
+    whole batch underflows).
+
+    Example:
+        >>> s = mixed_scales(np.random.default_rng(0), 1e4, 5)
+        >>> float(s.max()), bool(s.min() < 1e4)
+        (10000.0, True)
+    """
+    m = np.asarray(magnitude, dtype=np.float64)
+    m = np.full(size, float(m)) if m.ndim == 0 else m.astype(np.float64).copy()
+    scales = m * 10.0 ** rng.uniform(-6.0, 0.0, size=m.shape[0])
+    if m.size:
+        # a random row when every row has the same top, else the row with the largest top
+        top = int(rng.integers(0, m.size)) if np.all(m == m[0]) else int(np.argmax(m))
+        scales[top] = m[top]
+    return scales
 
 
 # --------------------------------------------------------------------------------------------
@@ -147,11 +179,13 @@ def common_grid(x: np.ndarray | float, dtypes: Sequence[str]) -> np.ndarray:
         1.0
     """
     out = np.asarray(x, dtype=np.float64)
+    if len(dtypes) == 1:
+        return round_to(out, dtypes[0])  # rounding to one dtype is idempotent: once is a fixed point
     for _ in range(3):
         prev = out
         for d in dtypes:
             out = round_to(out, d)
-        if np.array_equal(out, prev, equal_nan=True):
+        if np.array_equal(out.view(np.uint64), prev.view(np.uint64)):  # bit for bit: nothing moved
             return out
     stable = np.ones(out.shape, bool)
     for d in dtypes:
@@ -219,6 +253,50 @@ def wide_magnitudes(dtype: str | np.dtype = "float64") -> np.ndarray:
     top = largest_finite(dtype)
     extra = [v for v in (1e5, 1e8, 1e16, 1e38, 1e100, 1e300) if v < top]
     return np.asarray(list(magnitudes(dtype)) + extra + [top], dtype=np.float64)
+
+
+def overflow_rungs(mags: np.ndarray, dtypes: Sequence[str] | None = None) -> list[float]:
+    """For each dtype, the smallest rung M of ``mags`` with M > ln(largest finite value).
+
+    There e^M overflows: a softmax or log-sum-exp without max subtraction breaks from that rung
+    on (float16: 11.1, bfloat16 and float32: 88.7, float64: 709.8).
+
+    Example:
+        >>> overflow_rungs(magnitudes("float64"))
+        [30.0, 90.0, 1000.0]
+    """
+    from .tolerance import DTYPES
+
+    m = np.sort(np.asarray(mags, dtype=np.float64))
+    out: list[float] = []
+    for d in DTYPES if dtypes is None else dtypes:
+        past = m[m > np.log(largest_finite(d))]  # e^M > max ⟺ M > ln max
+        if past.size and float(past[0]) not in out:
+            out.append(float(past[0]))
+    return out
+
+
+def thin_rungs(mags: np.ndarray, keep: int, dtypes: Sequence[str] | None = None) -> np.ndarray:
+    """``keep`` rungs of ``mags`` (never fewer than its essentials), spread evenly, ascending.
+
+    Essentials: the first rung (0 in every ladder), the last (a wide ladder's largest finite
+    value) and the rungs just past each dtype's exponential overflow (:func:`overflow_rungs`).
+    The rest are taken evenly by index among the others.
+
+    Example:
+        >>> thin_rungs(magnitudes("float64"), 4, ["float32"]).tolist()
+        [0.0, 10.0, 90.0, 10000.0]
+    """
+    m = np.sort(np.asarray(mags, dtype=np.float64))
+    if keep >= m.size:
+        return m
+    must = {float(m[0]), float(m[-1]), *overflow_rungs(m, dtypes)}
+    rest = [float(v) for v in m if float(v) not in must]
+    extra = min(max(keep - len(must), 0), len(rest))
+    # the centres of ``extra`` equal bins of the remaining rungs: distinct, evenly spread
+    picks = np.floor((np.arange(extra) + 0.5) * len(rest) / max(extra, 1)).astype(int)
+    must |= {rest[i] for i in picks}
+    return np.asarray(sorted(must), dtype=np.float64)
 
 
 def profile_magnitudes(dtype: str | np.dtype = "float64") -> np.ndarray:

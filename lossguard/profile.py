@@ -41,7 +41,6 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
@@ -54,12 +53,8 @@ from .ladders import common_grid, largest_finite, profile_magnitudes, round_down
 from .spec import LossSpec
 from .tolerance import DTYPES, op_count, rounding_allowance
 
-try:  # optional dependency: the oracle falls back to the float64 reference without it
-    import mpmath as _mpmath
+from ._mp_oracle import _MP, mp_reference_stack
 
-    _MP: Any = _mpmath.mp
-except ImportError:  # pragma: no cover - exercised only where mpmath is absent
-    _MP = None
 
 __all__ = ["PROFILE_PATTERNS", "DtypeProfile", "Profile", "profile", "mp_available", "mp_reference_stack"]
 
@@ -278,169 +273,6 @@ def profile(
     return prof
 
 
-# ------------------------------------------------------------------------------ mpmath oracle
-# Each registry reference written once more in mpmath, per example, with its gradient carried by
-# forward-mode dual numbers (value a, tangent d_c = ∂/∂z_c): exact arithmetic rules, no derivation
-# to trust. Written in the registry's own stable forms, so 40 digits suffice at every magnitude.
-
-
 def mp_available() -> bool:
     """Whether mpmath can be imported (it is an optional dependency)."""
     return _MP is not None
-
-
-class _Dual:
-    """a + Σ_c d_c ε_c over mpmath numbers (ε_c ε_k = 0): forward mode, all C tangents at once."""
-
-    __slots__ = ("a", "d")
-
-    def __init__(self, a: Any, d: list[Any]) -> None:
-        self.a, self.d = a, d
-
-    @staticmethod
-    def const(value: Any, c: int) -> _Dual:
-        return _Dual(_MP.mpf(value), [_MP.zero] * c)
-
-    def _lift(self, o: Any) -> _Dual:
-        return o if isinstance(o, _Dual) else _Dual.const(o, len(self.d))
-
-    def __add__(self, o: Any) -> _Dual:
-        o = self._lift(o)
-        return _Dual(self.a + o.a, [x + y for x, y in zip(self.d, o.d)])
-
-    def __neg__(self) -> _Dual:
-        return _Dual(-self.a, [-x for x in self.d])
-
-    def __sub__(self, o: Any) -> _Dual:
-        return self + (-self._lift(o))
-
-    def __rsub__(self, o: Any) -> _Dual:
-        return self._lift(o) - self
-
-    def __mul__(self, o: Any) -> _Dual:
-        if not isinstance(o, _Dual):
-            return _Dual(self.a * _MP.mpf(o), [x * o for x in self.d])
-        return _Dual(self.a * o.a, [self.a * y + o.a * x for x, y in zip(self.d, o.d)])  # product rule
-
-    __radd__, __rmul__ = __add__, __mul__
-
-
-def _chain(x: _Dual, value: Any, slope: Any) -> _Dual:
-    """f(x) with f'(x) = slope; a zero tangent stays zero even where the slope is infinite."""
-    return _Dual(value, [slope * t if t != 0 else _MP.zero for t in x.d])
-
-
-def _exp(x: _Dual) -> _Dual:
-    e = _MP.exp(x.a)
-    return _chain(x, e, e)  # (eˣ)' = eˣ
-
-
-def _log(x: _Dual, one: int = 0) -> _Dual:
-    """log(one + x) (``one`` = 1: log1p, accurate for small x); −inf, with nan slope, at 0."""
-    if one + x.a == 0:
-        return _chain(x, _MP.ninf, _MP.nan)
-    return _chain(x, _MP.log1p(x.a) if one else _MP.log(x.a), 1 / (one + x.a))  # (log(1 + x))' = 1/(1 + x)
-
-
-def _softplus(x: _Dual) -> _Dual:
-    # log(1 + eˣ) = x + log1p(e^(−x)) for x > 0, log1p(eˣ) otherwise (no overflow, no cancellation)
-    return x + _log(_exp(-x), 1) if x.a > 0 else _log(_exp(x), 1)
-
-
-def _lse(zs: list[_Dual], skip: int | None = None) -> _Dual:
-    """log Σ_{c ≠ skip} e^(z_c) = z_k + log1p(Σ_{c ≠ k} e^(z_c − z_k)), z_k the largest."""
-    idx = [c for c in range(len(zs)) if c != skip]
-    k = max(idx, key=lambda c: zs[c].a)
-    rest = [_exp(zs[c] - zs[k]) for c in idx if c != k]  # z_k is a variable in both places
-    return zs[k] + _log(sum(rest[1:], rest[0]), 1) if rest else zs[k]
-
-
-def _mp_example(name: str, z: list[_Dual], y: Any, inputs: str, prm: dict[str, Any]) -> _Dual:
-    """ℓ of one example (categorical/distribution: a row; binary: one element)."""
-    c, zero = len(z), _Dual.const(0, len(z))
-    gamma, a = float(prm.get("gamma", 2.0)), prm.get("alpha")
-    if name in ("bce", "focal_binary"):
-        x, t = z[0], _MP.mpf(float(y))
-        if name == "bce" and inputs == "probabilities":  # −[w y log p + (1 − y) log(1 − p)], 0 · log 0 = 0
-            w = 1.0 if prm.get("pos_weight") is None else float(prm["pos_weight"])
-            out = zero - w * t * _log(x) if t != 0 else zero
-            return out - (1 - t) * _log(-x, 1) if t != 1 else out
-        if name == "bce":
-            w = 1.0 if prm.get("pos_weight") is None else float(prm["pos_weight"])
-            return (1 - t) * _softplus(x) + w * t * _softplus(-x)
-        lp, lq = -_softplus(-x), -_softplus(x)  # log σ(z), log(1 − σ(z)) = log σ(−z)
-        l1 = lq if t == 1 else lp if t == 0 else _log(t * _exp(lq) + (1 - t) * _exp(lp))  # log(1 − p_t)
-        at = 1.0 if a is None else a * t + (1 - a) * (1 - t)
-        # (1 − p_t)^γ = e^(γ log(1 − p_t)), times the cross-entropy −[y log p + (1 − y) log(1 − p)]
-        return at * -(t * lp + (1 - t) * lq) * (_exp(gamma * l1) if gamma else 1)
-    w = prm.get("weight") or [1.0] * c
-    if inputs == "probabilities":  # categorical_ce: −Σ_c w_c y_c log p_c
-        if np.ndim(y) == 0:
-            return -_log(z[int(y)])
-        return sum((-(w[j] * float(y[j])) * _log(z[j]) for j in range(c) if y[j] != 0), zero)
-    lse = _lse(z)
-    if name == "categorical_ce" and np.ndim(y) == 0:
-        return lse - z[int(y)]
-    if name == "categorical_ce":
-        return sum(((w[j] * float(y[j])) * (lse - z[j]) for j in range(c) if y[j] != 0), zero)
-    if name == "smoothed_ce":
-        eps = float(prm.get("epsilon", 0.1))
-        return sum((((1 - eps) * (j == int(y)) + eps / c) * (lse - z[j]) for j in range(c)), zero)
-    if name == "kl_divergence":  # Σ y_c (log y_c − ls_c), 0 · log 0 = 0
-        return sum((float(y[j]) * (_MP.log(float(y[j])) - (z[j] - lse)) for j in range(c) if y[j] != 0), zero)
-    if name == "focal_multiclass":
-        lab = int(y)
-        ay = 1.0 if a is None else float(a) if np.ndim(a) == 0 else float(a[lab])
-        l1 = _lse(z, skip=lab) - lse  # log(1 − p_y) = logsumexp_{c≠y} z_c − logsumexp z
-        return ay * (lse - z[lab]) * (_exp(gamma * l1) if gamma else 1)
-    raise KeyError(name)
-
-
-def _split(x: Any) -> tuple[float, float]:
-    """An mpmath number as float64 hi + lo (lo the rounding error of hi; 0 when hi is not finite)."""
-    hi = float(x)
-    return hi, (float(x - hi) if np.isfinite(hi) else 0.0)
-
-
-def mp_reference_stack(spec: LossSpec, predictions: np.ndarray, targets: np.ndarray, *,
-                       reduction: str = "mean", dps: int = 40) -> tuple[np.ndarray, ...]:
-    """The declared reference in mpmath on every case of a stack, reduced like the loss.
-
-    Shapes: predictions (K, …) and targets as in :mod:`lossguard.cases`. Returns float64
-    ``(v_hi, v_lo, g_hi, g_lo)``: the value (K,) or (K, per-example) and the gradient (K, …) of
-    the reduced loss (a VJP with ones for ``reduction="none"``), each split as hi + lo.
-    Weights follow :mod:`lossguard.references._base` (ignored labels 0, class weights).
-    """
-    from .references import get_reference, validate_params
-
-    ref, binary = get_reference(spec.reference or ""), spec.kind == "binary"
-    prm = validate_params(ref, spec.params, None if binary else predictions.shape[-1])
-    out: tuple[list[Any], ...] = ([], [], [], [])
-    with _MP.workdps(dps):  # scoped: the precision is restored on exit
-        for zk, yk in zip(predictions, targets):
-            zf, yf = (zk.reshape(-1, 1), yk.reshape(-1)) if binary else (zk, yk)
-            n, c = zf.shape
-            ignored = (yf == spec.ignore_label) if spec.ignore_label is not None else np.zeros(n, bool)
-            yy = np.where(ignored, 0, yf) if spec.kind == "categorical" else yf
-            w = np.ones(n) if ref.example_weights is None or binary else \
-                np.asarray(ref.example_weights(yy, **prm), dtype=np.float64).reshape(-1)
-            w = np.where(ignored, 0.0, w)
-            ells = [_mp_example(ref.name, [_Dual(_MP.mpf(float(v)), [_MP.one if j == q else _MP.zero
-                                                                     for j in range(c)])
-                                           for q, v in enumerate(zf[i])], yy[i], spec.inputs, prm)
-                    if w[i] != 0 else _Dual.const(0, c) for i in range(n)]
-            total = _MP.fsum(_MP.mpf(float(x)) for x in w)
-            if reduction == "mean" and total == 0:  # every example ignored: 0/0 (as the reference)
-                vals, grads = [(float("nan"), 0.0)], [(0.0, 0.0)] * (n * c)
-            else:
-                scale = [_MP.mpf(float(x)) / (total if reduction == "mean" else 1) for x in w]
-                terms = [(scale[i] * e.a if w[i] != 0 else _MP.zero) for i, e in enumerate(ells)]
-                vals = [_split(t) for t in terms] if reduction == "none" else [_split(_MP.fsum(terms))]
-                grads = [_split(scale[i] * t) if w[i] != 0 else (0.0, 0.0) for i, e in enumerate(ells) for t in e.d]
-            for slot, pairs in ((0, vals), (2, grads)):
-                out[slot].append([p[0] for p in pairs])
-                out[slot + 1].append([p[1] for p in pairs])
-    k = predictions.shape[0]
-    vshape = (k,) if reduction != "none" else (k,) + (targets.shape[1:] if binary else targets.shape[1:2])
-    return tuple(np.asarray(o).reshape(shape) for o, shape in
-                 zip(out, (vshape, vshape, predictions.shape, predictions.shape)))

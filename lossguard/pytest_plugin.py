@@ -14,9 +14,16 @@ Runnable examples of both ways in: ``recipes/orchard/test_sorting_line.py``.
 pytest then collects one item per check that :func:`lossguard.checks.select_checks` picks for
 the declaration, named ``test_gaps[reference]``, ``test_gaps[finite]`` … so ``-k``,
 ``-x``, ``--lf``, ``-n`` (pytest-xdist) and ``--junitxml`` behave as for any test. Checks that
-do not apply (or were turned off) are collected as skipped, with the reason. The battery runs
-once per declaration per session (per worker under xdist), restricted to the checks selected
-for this run; every item asserts its own check's verdict and fails with that check's report.
+do not apply (or were turned off) are collected as skipped, with the reason. Every item asserts
+its own check's verdict and fails with that check's report; no check runs that no item of the
+run asked for (``-k``, ``--lf``), and the items of a declaration share one battery run.
+
+**Under pytest-xdist** a worker runs only the checks of the items it receives, and builds a
+declaration's evaluator (the loss's compiled functions) once. With ``--dist loadgroup`` the
+plugin puts each declaration's items in one ``xdist_group`` (unless ``marks=`` names one), so a
+single worker runs it as one battery and compiles its functions once (the least total work).
+With the default ``--dist load`` a declaration may be split, each worker compiling what its
+checks need; a closing line says how many were. Verdicts never depend on the distribution.
 
 **A fixture for your own test functions.** ``run_battery(loss, **declaration)`` runs the
 battery with the session's settings, fails the test with the report when a check fails, and
@@ -37,6 +44,7 @@ every failed check with its worst case. Items carry the marker ``lossguard`` (``
 from __future__ import annotations
 
 import sys
+from collections import OrderedDict
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -147,15 +155,17 @@ class CheckItem(pytest.Item):
             self.add_marker(mark)
         if reason is not None:
             self.add_marker(pytest.mark.skip(reason=reason))
+        elif _grouped(self.config) and not any(getattr(m, "name", "") == "xdist_group" for m in battery.marks):
+            # under --dist loadgroup a declaration's items share a group: one worker runs them all
+            self.add_marker(pytest.mark.xdist_group(self.nodeid.rsplit("[", 1)[0].replace("@", "_")))
         self.user_properties.append(("lossguard_check", check))
 
     def runtest(self) -> None:
         if self.battery.spec is None:
             raise CheckFailed(self.battery.problem)
-        outcome = _state(self.config).outcome(self.battery, self.session.items, self.check)
-        if isinstance(outcome, str):
-            raise CheckFailed(outcome)
-        result = outcome.check(self.check)
+        result = _state(self.config).outcome(self.battery, self.session.items, self.check)
+        if isinstance(result, str):
+            raise CheckFailed(result)
         self.user_properties.append(("lossguard_verdict", result.verdict))
         if result.verdict == "skip":
             pytest.skip(result.summary)
@@ -170,6 +180,11 @@ class CheckItem(pytest.Item):
 
     def reportinfo(self) -> tuple[Any, int | None, str]:
         return self.path, self.battery.lineno, self.name
+
+
+def _grouped(config: Any) -> bool:
+    """Whether xdist runs with ``--dist loadgroup`` (on a worker, xdist sets ``loadgroup``)."""
+    return bool(getattr(config.option, "loadgroup", False)) or getattr(config.option, "dist", None) == "loadgroup"
 
 
 @pytest.hookimpl(tryfirst=True)
@@ -196,14 +211,32 @@ def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[py
 
 
 # -- per-run state ---------------------------------------------------------------------------
+#: most declarations whose Evaluator (its compiled functions, ~30 MB each) a worker keeps alive
+_LIVE_EVALUATORS = 4
+
+
+@dataclass(eq=False)
+class _Declared:
+    """A declaration in this process: its check results, its Evaluator (or why none) if kept."""
+
+    battery: Battery  # kept alive here, so the id() it is filed under cannot be reused
+    results: dict[str, Any] = field(default_factory=dict)
+    evaluator: Any = None
+
+
 @dataclass
 class _State:
     """What one pytest run (one xdist worker) keeps: settings, results, failed checks."""
 
     settings: dict[str, Any]
     sources: dict[str, str]
-    outcomes: dict[int, tuple[Battery, Any]] = field(default_factory=dict)
+    #: whether this process runs all items of each declaration it runs (no xdist, or a lone or
+    #: loadgroup worker); a worker under another --dist cannot know which items will come
+    whole: bool = True
+    declared: dict[int, _Declared] = field(default_factory=dict)
+    live: OrderedDict[int, None] = field(default_factory=OrderedDict)  # declarations with an Evaluator
     failures: list[tuple[str, str]] = field(default_factory=list)
+    workers: dict[str, set[str]] = field(default_factory=dict)  # declaration → xdist workers that ran it
     adhoc: dict[tuple[Any, ...], tuple[LossSpec, Any]] = field(default_factory=dict)
 
     def resolve(self, seed: int | None, effort: str | None) -> tuple[int, str]:
@@ -211,15 +244,33 @@ class _State:
                 self.settings["effort"] if effort is None else effort)
 
     def outcome(self, bat: Battery, items: Sequence[Any], check: str) -> Any:
-        """The Result for ``bat`` (or a one-line problem), run once with the checks of this run."""
-        key = id(bat)  # the Battery is kept alive in the value, so its id cannot be reused
-        if key not in self.outcomes:
-            wanted = [i.check for i in items if isinstance(i, CheckItem) and i.battery is bat and i.reason is None]
-            if check not in wanted:
-                wanted.append(check)
-            seed, effort = self.resolve(bat.seed, bat.effort)
-            self.outcomes[key] = (bat, _run_safely(bat.spec, seed, effort, wanted))  # type: ignore[arg-type]
-        return self.outcomes[key][1]
+        """The CheckResult of ``check`` for ``bat``, or a one-line problem.
+
+        When this process runs whole declarations (:attr:`whole`), the first item of one
+        runs the checks of all its items in one battery (XLA compiles ahead for all of them);
+        otherwise (an xdist worker, which cannot know which items will come) just ``check``, on
+        the declaration's Evaluator, kept for its next items here. No other check ever runs.
+        """
+        entry = self.declared.setdefault(id(bat), _Declared(bat))
+        if check in entry.results:
+            return entry.results[check]
+        seed, effort = self.resolve(bat.seed, bat.effort)
+        wanted = [check]
+        if self.whole:
+            wanted += [i.check for i in items if isinstance(i, CheckItem) and i.battery is bat
+                       and i.reason is None and i.check not in entry.results and i.check != check]
+        if entry.evaluator is None:
+            entry.evaluator = _safely(_new_evaluator, seed, bat.spec)
+        if isinstance(entry.evaluator, str):
+            return entry.evaluator  # the loss could not even be probed: every item says so
+        result = _safely(_run, seed, bat.spec, seed, effort, wanted, entry.evaluator)
+        for name in wanted:
+            entry.results[name] = result if isinstance(result, str) else result.check(name)
+        self.live[id(bat)] = None
+        self.live.move_to_end(id(bat))
+        while self.live and (self.whole or len(self.live) > _LIVE_EVALUATORS):
+            self.declared[self.live.popitem(last=False)[0]].evaluator = None
+        return entry.results[check]
 
 
 _STATE = pytest.StashKey[_State]()
@@ -231,13 +282,24 @@ def _state(config: Any) -> _State:
     return config.stash[_STATE]
 
 
-def _run_safely(spec: LossSpec, seed: int, effort: str, only: list[str] | None) -> Any:
-    """``run`` whose every problem comes back as one line, never as a lossguard traceback."""
-    from .adapters._base import first_line
+def _new_evaluator(spec: LossSpec) -> Any:
+    from .evaluate import Evaluator
+
+    return Evaluator(spec)
+
+
+def _run(spec: LossSpec, seed: int, effort: str, only: list[str] | None, evaluator: Any = None) -> Any:
     from .runner import run
 
+    return run(spec, seed=seed, effort=effort, only=only, evaluator=evaluator)
+
+
+def _safely(fn: Callable[..., Any], seed: int, *args: Any, **kwargs: Any) -> Any:
+    """``fn(*args, **kwargs)``, or the one line saying why lossguard could not run the battery."""
+    from .adapters._base import first_line
+
     try:
-        return run(spec, seed=seed, effort=effort, only=only)
+        return fn(*args, **kwargs)
     except LossguardError as exc:
         return f"lossguard could not run the battery: {exc}"
     except Exception as exc:  # a defect in lossguard itself: one line, with the seed
@@ -295,7 +357,9 @@ def _read_settings(config: Any) -> tuple[dict[str, Any], dict[str, str]]:
 def pytest_configure(config: Any) -> None:
     config.addinivalue_line("markers", f"{_MARKER}: a lossguard check of a declared loss")
     values, sources = _read_settings(config)
-    state = _State(values, sources)
+    worker = getattr(config, "workerinput", None)  # set by xdist on its workers
+    whole = worker is None or worker.get("workercount") == 1 or _grouped(config)
+    state = _State(values, sources, whole=whole)
     config.stash[_STATE] = state
     config.pluginmanager.register(_Recorder(state), "lossguard-recorder")
 
@@ -309,7 +373,8 @@ def pytest_report_header(config: Any) -> str:
 
 
 class _Recorder:
-    """Collects the failed checks reported by items (here or on xdist workers) into the state."""
+    """Collects the failed checks reported by items (here or on xdist workers) into the state,
+    and on the xdist controller which workers ran each declaration's items."""
 
     def __init__(self, state: _State) -> None:
         self.state = state
@@ -317,19 +382,26 @@ class _Recorder:
     def pytest_runtest_logreport(self, report: Any) -> None:
         if report.when != "call":
             return
+        worker = getattr(report, "worker_id", None)  # set by xdist on the controller's copy
         for key, value in report.user_properties:
             if key == _FAILURE_PROPERTY:
                 self.state.failures.append((report.nodeid, str(value)))
+            elif key == "lossguard_check" and worker:
+                declaration = report.nodeid.split("@")[0].rsplit("[", 1)[0]
+                self.state.workers.setdefault(declaration, set()).add(str(worker))
 
 
 def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: Any) -> None:
-    failures = _state(config).failures
-    if not failures:
+    state, tr = _state(config), terminalreporter
+    split = sum(len(w) > 1 for w in state.workers.values())
+    if split:
+        tr.write_line(f"lossguard: {split} of {len(state.workers)} declared losses ran on more than one "
+                      f"worker, each compiling its functions there; --dist loadgroup keeps each on one worker")
+    if not state.failures:
         return
-    tr = terminalreporter
     tr.write_sep("=", "lossguard: failed checks", red=True)
     last = None
-    for nodeid, text in failures:
+    for nodeid, text in state.failures:
         if nodeid != last:
             tr.write_line(nodeid)
         last = nodeid
@@ -360,7 +432,7 @@ def run_battery(request: Any) -> Callable[..., Any]:
         chosen = list(only) if only is not None else None
         key = (id(spec), s, e, tuple(chosen) if chosen is not None else None)
         if key not in state.adhoc or state.adhoc[key][0] is not spec:
-            state.adhoc[key] = (spec, _run_safely(spec, s, e, chosen))
+            state.adhoc[key] = (spec, _safely(_run, s, spec, s, e, chosen))
         result = state.adhoc[key][1]
         if isinstance(result, str):
             pytest.fail(result, pytrace=False)

@@ -70,6 +70,26 @@ def run_check(check: Any, ctx: Context) -> CheckResult:
     return result
 
 
+def _compile_ahead(ctx: Context, checks: list[Any]) -> None:
+    """Hand the evaluator every function the checks will compile, in battery order, so XLA
+    compiles them in the background while earlier checks run."""
+    plan: list[tuple[str, str, Cell]] = []
+    for check in checks:
+        if check.compiles is None:
+            continue
+        try:
+            wanted = check.compiles(ctx)
+        except Exception:  # a plan is an optimisation: never let it stop the battery
+            continue
+        plan += [job for job in wanted if job not in plan]
+    # first what the early checks need: value-and-gradient in float64, then lower precisions;
+    # forward mode (the gradient check's) last
+    rank = {"float64": 0, "float16": 1, "bfloat16": 2, "float32": 3}
+    plan.sort(key=lambda job: (job[0] != "vg", rank.get(job[1], 4)))
+    if plan:
+        ctx.evaluator.prepare(plan)
+
+
 def run(
     spec: LossSpec,
     *,
@@ -114,6 +134,7 @@ def run(
     ev = evaluator or Evaluator(spec)
     ctx = Context(spec=spec, evaluator=ev, seed=seed, effort=effort,
                   cells_override=tuple(cells) if cells else None)
+    _compile_ahead(ctx, [check for check, reason in battery if reason is None])
     results = []
     for i, (check, reason) in enumerate(battery):
         if progress is not None:

@@ -60,7 +60,7 @@ def test_adapter_and_output_are_detected(loss, adapter, output):
 
 def test_all_adapters_agree_on_values_and_padding_does_not_leak():
     spec = declare(ce, kind="categorical")
-    stack = stack_for(spec, k=5)  # padded to a bucket of 8 inside the JAX adapter
+    stack = stack_for(spec, k=5)  # padded to the shape's call size (128 cases) inside the JAX adapter
     a = Evaluator(spec).values(stack)
     b = Evaluator(declare(ce_numpy, kind="categorical")).values(stack)
     np.testing.assert_allclose(a, b, rtol=1e-13)  # same formula, float64 both: a few ulp apart

@@ -7,11 +7,16 @@ later do not change what these tests see; "one item per check" is asserted as a 
 
 from __future__ import annotations
 
+import gc
+import json
+import weakref
 import xml.etree.ElementTree as ET
 
 import hypothesis  # noqa: F401  (imported here so in-process runs do not re-import it each time)
 import pytest
 
+import lossguard.evaluate
+import lossguard.pytest_plugin as plugin
 import lossguard.runner
 from lossguard import declare
 from lossguard.checks import select_checks
@@ -94,24 +99,121 @@ def test_battery_runs_once_per_declaration_with_the_selected_checks(
     pytester: pytest.Pytester, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     calls: list[dict] = []
-    real = lossguard.runner.run
+    made: list[weakref.ref] = []
+    real_run, real_evaluator = lossguard.runner.run, lossguard.evaluate.Evaluator
 
     def counting(spec, **kw):  # type: ignore[no-untyped-def]
         calls.append({"name": spec.name, **kw})
-        return real(spec, **kw)
+        return real_run(spec, **kw)
+
+    def making(spec):  # type: ignore[no-untyped-def]
+        ev = real_evaluator(spec)
+        made.append(weakref.ref(ev))
+        return ev
 
     monkeypatch.setattr(lossguard.runner, "run", counting)
+    monkeypatch.setattr(lossguard.evaluate, "Evaluator", making)
     _project(pytester)
     result = pytester.runpytest_inprocess("-k", "scaled", "--lossguard-seed", "7", "--lossguard-effort", "quick",
                                           "-p", "no:cacheprovider")
     result.assert_outcomes(passed=1, failed=1, deselected=3)
-    assert len(calls) == 1  # two items, one battery run
+    assert len(calls) == 1 and len(made) == 1  # two items, one battery run, one Evaluator
     assert sorted(calls[0]["only"]) == ["reference", "shift"]
     assert (calls[0]["seed"], calls[0]["effort"]) == (7, "quick")
     calls.clear()
+    gc.collect()
+    assert made[0]() is None  # its compiled functions are not kept once its checks have run
+    # a selection of some of a declaration's items runs those checks only
     result = pytester.runpytest_inprocess("-k", "scaled and shift", "--lossguard-effort", "quick", "-p", "no:cacheprovider")
     result.assert_outcomes(passed=1, deselected=4)
     assert [c["only"] for c in calls] == [["shift"]]
+
+
+def test_last_failed_reruns_only_the_failed_checks(pytester: pytest.Pytester, monkeypatch: pytest.MonkeyPatch) -> None:
+    calls: list[list[str]] = []
+    real_run = lossguard.runner.run
+
+    def counting(spec, **kw):  # type: ignore[no-untyped-def]
+        calls.append(sorted(kw["only"]))
+        return real_run(spec, **kw)
+
+    monkeypatch.setattr(lossguard.runner, "run", counting)
+    _project(pytester, body=PINNED.replace("test_good = ", "_a = ").replace("test_naive = ", "_b = "))
+    pytester.runpytest_inprocess("--lossguard-effort", "quick").assert_outcomes(passed=1, failed=1)
+    assert calls == [["reference", "shift"]]
+    calls.clear()
+    result = pytester.runpytest_inprocess("--lf", "--lossguard-effort", "quick")
+    result.assert_outcomes(failed=1)  # the passed shift item is not run again
+    assert calls == [["reference"]]
+
+
+def test_a_worker_runs_one_check_per_item_and_bounds_its_evaluators(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The bookkeeping of an xdist worker (which cannot know which items will come), with the
+    Evaluator and the battery replaced by stand-ins that record what they were asked."""
+    runs: list[tuple[str, list[str], object]] = []
+    made: list[str] = []
+
+    class Outcome:
+        def __init__(self, only: list[str]) -> None:
+            self.only = only
+
+        def check(self, name: str) -> str:
+            return f"verdict of {name}"
+
+    def fake_evaluator(spec):  # type: ignore[no-untyped-def]
+        made.append(spec.name)
+        return object()
+
+    def fake_run(spec, seed, effort, only, evaluator=None):  # type: ignore[no-untyped-def]
+        runs.append((spec.name, list(only), evaluator))
+        return Outcome(only)
+
+    monkeypatch.setattr(plugin, "_new_evaluator", fake_evaluator)
+    monkeypatch.setattr(plugin, "_run", fake_run)
+    losses = [declare(lambda z, y, k=k: z.sum() * k, kind="categorical", name=f"loss{k}") for k in range(6)]
+    batteries = [plugin.Battery(spec=spec) for spec in losses]
+    state = plugin._State({"seed": 0, "effort": "quick"}, {}, whole=False)
+    assert state.outcome(batteries[0], [], "shift") == "verdict of shift"
+    assert state.outcome(batteries[0], [], "reference") == "verdict of reference"
+    assert state.outcome(batteries[0], [], "shift") == "verdict of shift"  # not run twice
+    assert [r[:2] for r in runs] == [("loss0", ["shift"]), ("loss0", ["reference"])]
+    assert runs[0][2] is runs[1][2] and made == ["loss0"]  # one Evaluator for the declaration
+    for bat in batteries[1:]:
+        state.outcome(bat, [], "shift")
+    assert made == [f"loss{k}" for k in range(6)]
+    alive = [d.evaluator is not None for d in state.declared.values()]
+    assert sum(alive) == plugin._LIVE_EVALUATORS and not any(alive[:2])  # the oldest are released
+    state.outcome(batteries[0], [], "finite")  # a released declaration builds its Evaluator again
+    assert made[-1] == "loss0" and runs[-1][:2] == ("loss0", ["finite"])
+
+
+def test_a_loss_that_cannot_be_called_fails_each_item_with_one_line(
+    pytester: pytest.Pytester, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    tries: list[str] = []
+    real_evaluator = lossguard.evaluate.Evaluator
+
+    def making(spec):  # type: ignore[no-untyped-def]
+        tries.append(spec.name)
+        return real_evaluator(spec)
+
+    monkeypatch.setattr(lossguard.evaluate, "Evaluator", making)
+    _project(pytester, body='''
+from lossguard.pytest_plugin import battery
+
+
+def offline(z, y):  # raises on every call, so the evaluator cannot even probe it
+    raise RuntimeError("calibration table not loaded")
+
+
+test_wrong = battery(offline, kind="categorical", reference="categorical_ce", only=["reference", "shift"])
+''')
+    result = pytester.runpytest_inprocess("--lossguard-effort", "quick", "-p", "no:cacheprovider")
+    result.assert_outcomes(failed=2)
+    assert len(tries) == 1  # probed once; both items report the same line
+    assert result.stdout.str().count("lossguard could not run the battery: loss=test_losses:offline: raised "
+                                      "RuntimeError: calibration table not loaded") == 2
+    assert "Traceback" not in result.stdout.str()
 
 
 def test_settings_from_ini_and_flags_reach_header_and_run(pytester: pytest.Pytester) -> None:
@@ -201,15 +303,83 @@ def _junit(path) -> dict[str, str]:  # type: ignore[no-untyped-def]
     return out
 
 
-def test_xdist_gives_the_same_verdicts(pytester: pytest.Pytester) -> None:
+#: for the -n 2 runs: each worker logs the battery runs, Evaluators and items it sees
+WORKER_LOG = '''
+import json
+import os
+
+import lossguard.evaluate
+import lossguard.pytest_plugin as plugin
+import lossguard.runner
+
+_WORKER = os.environ.get("PYTEST_XDIST_WORKER")
+_LOG = os.path.join(os.path.dirname(os.path.abspath(__file__)), "worker_log.jsonl")
+
+
+def _log(**entry):
+    with open(_LOG, "a") as f:
+        f.write(json.dumps({"worker": _WORKER, **entry}) + "\\n")
+
+
+if _WORKER:  # xdist workers only: the in-process serial run leaves lossguard untouched
+    _run, _evaluator = lossguard.runner.run, lossguard.evaluate.Evaluator
+
+    def logged_run(spec, **kw):
+        _log(what="run", loss=spec.name, checks=kw.get("only"))
+        return _run(spec, **kw)
+
+    def logged_evaluator(spec):
+        _log(what="evaluator", loss=spec.name)
+        return _evaluator(spec)
+
+    lossguard.runner.run, lossguard.evaluate.Evaluator = logged_run, logged_evaluator
+
+    def pytest_runtest_call(item):
+        _log(what="item", loss=item.battery.spec.name, checks=[item.check])
+'''
+
+
+def _worker_log(path) -> dict[str, dict[str, list]]:  # type: ignore[no-untyped-def]
+    out: dict[str, dict[str, list]] = {}
+    for line in path.read_text().splitlines():
+        entry = json.loads(line)
+        seen = out.setdefault(entry["worker"], {"run": [], "evaluator": [], "item": []})
+        seen[entry["what"]].append((entry["loss"], *entry.get("checks", [])))
+    return out
+
+
+@pytest.mark.parametrize("dist", ["load", "loadgroup"])
+def test_xdist_workers_run_only_the_checks_they_receive(pytester: pytest.Pytester, dist: str) -> None:
     _project(pytester, body=PINNED.replace("test_naive = ", "_unused = "))
+    pytester.makeconftest(WORKER_LOG)
     common = ["--lossguard-effort", "quick", "-p", "no:cacheprovider", "-p", "no:benchmark",
               "-p", "no:hypothesispytest"]
     serial = pytester.runpytest_inprocess(*common, "--junitxml=serial.xml")
-    parallel = pytester.runpytest_subprocess(*common, "-n", "2", "--junitxml=parallel.xml")
+    assert not (pytester.path / "worker_log.jsonl").exists()
+    parallel = pytester.runpytest_subprocess(*common, "-n", "2", "--dist", dist, "--junitxml=parallel.xml")
     assert serial.ret == parallel.ret == pytest.ExitCode.TESTS_FAILED
+    # the same verdicts (under loadgroup xdist appends "@<group>" to the names)
     a, b = _junit(pytester.path / "serial.xml"), _junit(pytester.path / "parallel.xml")
-    assert a == b and len(a) == 3
     assert a == {"test_good[reference]": "passed", "test_scaled[reference]": "failed", "test_scaled[shift]": "passed"}
+    assert {name.split("@")[0]: v for name, v in b.items()} == a
     # the closing summary is assembled on the controller from the workers' reports
-    parallel.stdout.fnmatch_lines(["*lossguard: failed checks*", "test_losses.py::test_scaled[[]reference[]]"])
+    parallel.stdout.fnmatch_lines(["*lossguard: failed checks*", "test_losses.py::test_scaled[[]reference[]]*"])
+    log = _worker_log(pytester.path / "worker_log.jsonl")
+    assert sorted(log) == ["gw0", "gw1"]
+    for seen in log.values():
+        # a worker runs exactly the checks of the items it received, one Evaluator per declaration
+        ran = sorted((run[0], check) for run in seen["run"] for check in run[1:])
+        assert ran == sorted(seen["item"])
+        assert sorted(seen["evaluator"]) == sorted({(loss,) for loss, _ in seen["item"]})
+        # loadgroup: one battery run per declaration; load: one run per item (none can be batched)
+        assert len(seen["run"]) == len(seen["evaluator" if dist == "loadgroup" else "item"])
+    workers_of = {loss: {w for w, seen in log.items() if any(i[0] == loss for i in seen["item"])}
+                  for seen in log.values() for loss, _ in seen["item"]}
+    note = "lossguard: 1 of 2 declared losses ran on more than one worker*"
+    if dist == "load":  # 3 items on 2 workers go round-robin: test_scaled's two items are split
+        assert max(len(w) for w in workers_of.values()) == 2
+        parallel.stdout.fnmatch_lines([note])
+    else:  # one xdist_group per declaration: each declaration on one worker
+        assert all(len(w) == 1 for w in workers_of.values())
+        parallel.stdout.no_fnmatch_line("*ran on more than one worker*")
+    serial.stdout.no_fnmatch_line("*ran on more than one worker*")

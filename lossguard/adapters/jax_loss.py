@@ -1,33 +1,42 @@
 """Adapter for losses written with ``jax.numpy``: vmapped, jitted, compiled once per shape.
 
-The K cases of a stack are evaluated by one ``jit(vmap(…))`` call. Stacks are padded to a
-power-of-two bucket (at least 8) so that a battery compiles a handful of functions, not one per
-stack size. float64 runs inside ``jax.enable_x64(True)``; lower precisions inside
+The K cases of a stack are evaluated by ``jit(vmap(…))`` calls of one fixed size per shape
+(:func:`lossguard._budget.call_size`: 128 cases for the menu's shapes, fewer for large ones): a
+shorter stack is padded up to it and a longer one cut into calls of that size, so each
+(operation, dtype, shape) compiles once, whatever the number of cases. Values are read from the
+value-and-gradient function (its gradient discarded), so a battery needs one compiled function
+per (dtype, shape), plus forward mode where the gradient check asks for it. float64 runs inside ``jax.enable_x64(True)``; lower precisions inside
 ``jax.enable_x64(False)``, so a loss's own constants keep the width they have in training.
 Both are scoped and restored on exit.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .._budget import MAX_CALL_SIZE, call_size
 from ..tolerance import dtype_of
 from ._base import call_failed
 
-__all__ = ["JaxAdapter", "bucket"]
+__all__ = ["JaxAdapter", "Planned", "bucket"]
+
+#: One compiled function a battery will need: (operation, dtype, predictions shape of one case,
+#: targets shape of one case, targets are floats). See :meth:`JaxAdapter.prepare`.
+Planned = tuple[str, str, tuple[int, ...], tuple[int, ...], bool]
+#: Background threads compiling planned functions (XLA compiles without holding the GIL).
+COMPILE_THREADS = 2
 
 
-def bucket(k: int) -> int:
-    """The padded stack size: the next power of two, at least 8."""
-    b = 8
-    while b < k:
-        b *= 2
-    return b
+def bucket(k: int, case_elements: int = 1) -> int:
+    """The stack size of one compiled call for cases of ``case_elements`` prediction elements
+    (``k``, the cases wanted, does not change it: longer stacks take several calls)."""
+    return call_size(case_elements)
 
 
 def _pad(a: np.ndarray, size: int) -> np.ndarray:
@@ -51,6 +60,17 @@ class JaxAdapter:
         self._compiled: dict[tuple[str, bool], Any] = {}
         #: dtype of the loss's output for each requested input dtype (a loss may compute lower)
         self.out_dtypes: dict[str, str] = {}
+        #: output shape per case, given the prediction shape (set by the evaluator's probe)
+        self.out_shape: Callable[[tuple[int, ...]], tuple[int, ...]] | None = None
+        self._values_by_vg = True
+        #: compilations running in the background, by (op, dtype, stack shape): see prepare()
+        self._pending: dict[tuple[str, str, tuple[int, ...]], Future[Any]] = {}
+        self._prepared: set[tuple[str, str, tuple[int, ...]]] = set()
+
+    def _cot_shape(self, z: np.ndarray) -> tuple[int, ...]:
+        if self.out_shape is None:
+            return ()
+        return self.out_shape(tuple(z.shape[1:]))
 
     # -- the three functions, built once and jitted (JAX caches per shape and dtype) --------
     def _f(self, z: Any, y: Any) -> Any:
@@ -101,32 +121,97 @@ class JaxAdapter:
             self._compiled[key] = self._build(op)
         return self._compiled[key]
 
+    # -- compiling ahead -----------------------------------------------------------------------
+    def _avals(self, op: str, dtype: str, pred: tuple[int, ...], targ: tuple[int, ...], y_float: bool) -> list[Any]:
+        size = bucket(1, int(np.prod(pred)))
+        x64 = dtype == "float64"
+        dt = dtype_of(dtype)
+        int_dt = np.int64 if x64 else np.int32
+        avals = [jax.ShapeDtypeStruct((size,) + pred, dt),
+                 jax.ShapeDtypeStruct((size,) + targ, dt if y_float else int_dt)]
+        cot = (size,) + (self.out_shape(pred) if self.out_shape is not None else ())
+        if op == "vg":
+            avals.append(jax.ShapeDtypeStruct(cot, dt))
+        elif op == "jvp":
+            avals.append(jax.ShapeDtypeStruct((size,) + pred, dt))
+        else:
+            raise ValueError(op)
+        return avals
+
+    def prepare(self, plan: Sequence[Planned]) -> None:
+        """Start compiling the functions of ``plan`` in background threads.
+
+        Tracing (which runs the user's Python code) happens here, on the calling thread and in
+        plan order, so a loss with Python side effects sees its calls in the same order on every
+        run; only XLA's compilation, which runs no user code, moves to the threads. A call that
+        needs a function still compiling waits for it. Anything that fails here is left for the
+        real call to raise and report. The JIT cache is shared, so the real call reuses the result.
+        """
+        if not self.vectorised:
+            return
+        jobs = []
+        for op, dtype, pred, targ, y_float in plan:
+            key = (op, dtype, (bucket(1, int(np.prod(pred))),) + tuple(pred))
+            if key in self._prepared:
+                continue
+            self._prepared.add(key)
+            try:
+                with jax.enable_x64(dtype == "float64"):
+                    lowered = self._get(op).lower(*self._avals(op, dtype, tuple(pred), tuple(targ), y_float))
+            except Exception:
+                continue  # the real call will raise it, with the user-facing message
+            jobs.append((key, lowered))
+        if not jobs:
+            return
+        pool = ThreadPoolExecutor(max_workers=COMPILE_THREADS, thread_name_prefix="lossguard-compile")
+        for key, lowered in jobs:
+            self._pending[key] = pool.submit(lowered.compile)
+        pool.shutdown(wait=False)  # threads end when their queue is empty
+
+    def _await(self, op: str, dtype: str, shape: tuple[int, ...]) -> None:
+        fut = self._pending.pop((op, dtype, shape), None)
+        if fut is not None:
+            fut.exception()  # wait; a failure is re-raised by the real call
+
     # -- running ---------------------------------------------------------------------------
-    def _run(self, op: str, arrays: list[np.ndarray], dtype: str, float_mask: list[bool]) -> Any:
+    def _run(self, op: str, arrays: list[np.ndarray], dtype: str, float_mask: list[bool],
+             pick: int | None = None) -> Any:
+        """``op`` on K stacked cases in calls of the shape's fixed size; ``pick``: keep only that
+        output (the others are not copied back, which matters for large gradients)."""
         k = arrays[0].shape[0]
         self.calls += k
         x64 = dtype == "float64"
         dt = dtype_of(dtype)
         fn = self._get(op)
         with jax.enable_x64(x64):
-            int_dt = jnp.int64 if x64 else jnp.int32
+            int_dt = np.int64 if x64 else np.int32
 
             def cast(a: np.ndarray, is_float: bool) -> Any:
-                return jnp.asarray(a, dtype=dt if is_float else int_dt)
+                # convert on the host and device_put: jnp.asarray compiles a staging function per shape
+                return jax.device_put(np.asarray(a, dtype=dt if is_float else int_dt))
+
+            def fetch(out: Any, m: int | None) -> Any:
+                self._note_dtype(dtype, out)
+                if pick is not None:
+                    out = out[pick]
+                return jax.tree_util.tree_map(lambda o: np.asarray(o, dtype=np.float64)[:m], out)
 
             if self.vectorised:
-                size = bucket(k)
-                args = [cast(_pad(a, size), m) for a, m in zip(arrays, float_mask)]
-                out = fn(*args)
-                self._note_dtype(dtype, out)
-                return jax.tree_util.tree_map(lambda o: np.asarray(o, dtype=np.float64)[:k], out)
-            outs = []
-            for i in range(k):
-                args = [cast(a[i], m) for a, m in zip(arrays, float_mask)]
-                raw = fn(*args)
-                self._note_dtype(dtype, raw)
-                outs.append(jax.tree_util.tree_map(lambda o: np.asarray(o, dtype=np.float64), raw))
-            return jax.tree_util.tree_map(lambda *xs: np.stack(xs), *outs)
+                size = bucket(k, int(np.prod(arrays[0].shape[1:])))
+                outs = []
+                for start in range(0, k, size):  # one compiled size per shape: pad the last call
+                    part = [a[start:start + size] for a in arrays]
+                    if self._pending:
+                        self._await(op, dtype, (size,) + tuple(arrays[0].shape[1:]))
+                    args = [cast(_pad(a, size), m) for a, m in zip(part, float_mask)]
+                    outs.append(fetch(fn(*args), part[0].shape[0]))
+            else:
+                outs = [fetch(fn(*[cast(a[i:i + 1][0], m) for a, m in zip(arrays, float_mask)]), None)
+                        for i in range(k)]
+                outs = [jax.tree_util.tree_map(lambda o: o[None], o) for o in outs]
+            if len(outs) == 1:
+                return outs[0]
+            return jax.tree_util.tree_map(lambda *xs: np.concatenate(xs), *outs)
 
     def _note_dtype(self, dtype: str, out: Any) -> None:
         leaf = jax.tree_util.tree_leaves(out)[0]
@@ -138,6 +223,16 @@ class JaxAdapter:
     def values(self, z: np.ndarray, y: np.ndarray, dtype: str, *, eager: bool = False) -> np.ndarray:
         if eager:
             return self._eager_values(z, y, dtype)
+        small = bucket(1, int(np.prod(z.shape[1:]))) == MAX_CALL_SIZE
+        if self._values_by_vg and small:
+            # at the menu's shapes the value-and-gradient function serves values too (no second
+            # compilation); for large cases the arithmetic saved by a value function outweighs one
+            try:
+                cot = np.ones((z.shape[0],) + self._cot_shape(z), dtype=np.float64)
+                return self._run("vg", [z, y, cot], dtype, [True, self._targets_float(y), True], pick=0)
+            except Exception:
+                self._values_by_vg = False  # not differentiable: compile the plain value function
+                self.calls -= z.shape[0]
         try:
             return self._run("value", [z, y], dtype, [True, self._targets_float(y)])
         except Exception as exc:
@@ -150,10 +245,11 @@ class JaxAdapter:
         self.calls += z.shape[0]
         try:
             with jax.enable_x64(dtype == "float64"):
-                int_dt = jnp.int64 if dtype == "float64" else jnp.int32
-                for i in range(z.shape[0]):
-                    yy = jnp.asarray(y[i], dtype=dt if self._targets_float(y) else int_dt)
-                    outs.append(np.asarray(self._f(jnp.asarray(z[i], dtype=dt), yy), dtype=np.float64))
+                int_dt = np.int64 if dtype == "float64" else np.int32
+                for i in range(z.shape[0]):  # inputs converted on the host (no conversion compiles)
+                    yy = jax.device_put(np.asarray(y[i], dtype=dt if self._targets_float(y) else int_dt))
+                    zz = jax.device_put(np.asarray(z[i], dtype=dt))
+                    outs.append(np.asarray(self._f(zz, yy), dtype=np.float64))
         except Exception as exc:
             raise call_failed(exc, "values", z.shape[1:], dtype) from None
         return np.stack(outs)

@@ -18,8 +18,13 @@ from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, rando
 from ..evaluate import Evaluator
 from ..result import CheckResult
 from ..spec import LossSpec
+from ..tolerance import DTYPES
 
-__all__ = ["Check", "Context", "always", "never", "only"]
+__all__ = ["Check", "Context", "EAGER_DTYPE", "always", "never", "only", "planned"]
+
+#: The dtype of plain (not jitted) calls. A plain call compiles every primitive of the loss once
+#: per (shape, dtype), so every check that makes them uses this dtype and ``Context.eager_cell``.
+EAGER_DTYPE = "float64"
 
 
 def always(spec: LossSpec) -> bool:
@@ -55,6 +60,9 @@ class Check:
         default: whether it runs without ``--expect`` (when it applies).
         skip_hint: when turning it off is legitimate (shown with a failure).
         order: position in the battery (cheap, foundational checks first).
+        compiles: ``compiles(ctx)`` lists the compiled functions the check will ask for, as
+            (operation, dtype, shape) with operation ``"vg"`` or ``"jvp"``; the runner compiles
+            them in the background before the battery starts (:func:`planned` builds the list).
     """
 
     name: str
@@ -64,6 +72,16 @@ class Check:
     default: Callable[[LossSpec], bool] = always
     skip_hint: str = ""
     order: int = 50
+    compiles: Callable[[Context], list[tuple[str, str, Cell]]] | None = None
+
+
+def planned(dtypes: tuple[str, ...] = DTYPES, op: str = "vg") -> Callable[[Context], list[tuple[str, str, Cell]]]:
+    """A ``compiles`` rule: ``op`` in each of ``dtypes`` at the shapes of ``Context.cells_for``."""
+
+    def rule(ctx: Context) -> list[tuple[str, str, Cell]]:
+        return [(op, d, cell) for d in dtypes for cell in ctx.cells_for(d)]
+
+    return rule
 
 
 @dataclass
@@ -88,6 +106,24 @@ class Context:
             return list(self.cells_override)
         return shape_menu(self.spec, self.effort)
 
+    def cells_for(self, dtype: str) -> list[Cell]:
+        """The shapes a check evaluates in ``dtype``.
+
+        float64 (the oracle's precision) gets every cell. Below it, quick and default efforts
+        use the last cell only (the menu's largest class count): each further (dtype, shape)
+        costs a compilation, and what depends on the batch size in a low precision (a sum that
+        overflows) is the ``dtypes`` check's 4096-row batch. Thorough uses every cell.
+        """
+        cells = self.cells
+        if dtype == "float64" or self.effort == "thorough":
+            return cells
+        return cells[-1:]
+
+    @property
+    def eager_cell(self) -> Cell:
+        """The one shape of plain (not jitted) calls, in :data:`EAGER_DTYPE`: the menu's first."""
+        return self.cells_for(EAGER_DTYPE)[0]
+
     @property
     def domain(self) -> str:
         return target_domain(self.spec)
@@ -97,7 +133,7 @@ class Context:
         key = ("random", cell)
         if key not in self._stacks:
             self._stacks[key] = random_stack(
-                self.spec, cell, self.rng(f"random {cell}"), cases_per_cell(self.effort), domain=self.domain
+                self.spec, cell, self.rng(f"random {cell}"), cases_per_cell(self.effort, cell), domain=self.domain
             )
         return self._stacks[key]
 

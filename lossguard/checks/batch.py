@@ -48,7 +48,7 @@ from ..references import get_reference
 from ..result import CheckResult
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context
+from ._base import Check, Context, planned
 from ._compare import mismatch
 from .reference import case_scale, gradient_term_scale
 
@@ -119,8 +119,13 @@ class _Evals:
     h: int = 0
 
 
-def evaluate(ctx: Context, x: CaseStack, x2: CaseStack, rng: np.random.Generator, with_halves: bool) -> _Evals:
-    """Evaluate X, X', πX, [A; B'], [A'; B] and (``with_halves``) A and B alone."""
+def evaluate(ctx: Context, x: CaseStack, x2: CaseStack, rng: np.random.Generator, with_halves: bool,
+             partner: np.ndarray | None = None) -> _Evals:
+    """Evaluate X, X', πX, [A; B'], [A'; B] and (``with_halves``) A and B alone.
+
+    ``partner``: when X' is X's own cases reordered (``x2 = x.take(partner)``), X' is not
+    evaluated again: its results are X's, reordered.
+    """
     k, n = len(x), x.cell.n
     h = n // 2
     perm = np.argsort(rng.random((k, n)), axis=1)
@@ -132,7 +137,12 @@ def evaluate(ctx: Context, x: CaseStack, x2: CaseStack, rng: np.random.Generator
         calls.update(A=a, B=b)
     e = _Evals(calls=calls, perm=perm, h=h)
     for name, s in calls.items():
+        if name == "X2" and partner is not None:
+            continue
         e.v[name], e.g[name] = value_and_grad(ctx, s)
+    if partner is not None:  # the same cases, already evaluated as X
+        gx = e.g["X"]
+        e.v["X2"], e.g["X2"] = e.v["X"][partner], None if gx is None else gx[partner]
     return e
 
 
@@ -245,7 +255,7 @@ def _run(ctx: Context) -> CheckResult:
         x = ctx.standard_cases(cell)
         order = np.roll(np.arange(len(x)), len(x) // 2)  # pair random cases with ladder cases
         x2 = x.take(order)
-        evals.append((cell, evaluate(ctx, x, x2, ctx.rng(f"batch {cell}"), cell == big)))
+        evals.append((cell, evaluate(ctx, x, x2, ctx.rng(f"batch {cell}"), cell == big, partner=order)))
     chosen, tally = "", Tally("batch")
     for conv in _conventions(ctx):
         t = Tally("batch")
@@ -269,6 +279,13 @@ def _run(ctx: Context) -> CheckResult:
     )
 
 
+def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:
+    """Every cell in float64, and the halves of the largest one (A and B of the size comparison)."""
+    big = split_cell(ctx.cells)
+    return planned(("float64",))(ctx) + [("vg", "float64", halves(big)),
+                                         ("vg", "float64", Cell(big.n - big.n // 2, big.c, big.d))]
+
+
 CHECK = Check(
     name="batch",
     summary="reordering, regrouping or splitting the batch leaves per-example contributions unchanged",
@@ -276,4 +293,5 @@ CHECK = Check(
     skip_hint=("legitimate for a loss normalised by something other than its examples "
                "(the number of positives, a running statistic)"),
     order=34,
+    compiles=_compiles,
 )

@@ -41,7 +41,7 @@ from ..result import CheckResult
 from ..spec import LossSpec
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context, only
+from ._base import Check, Context, only, planned
 from ._compare import mismatch
 from .reference import case_scale, gradient_term_scale
 
@@ -148,4 +148,5 @@ CHECK = Check(
     default=_default,
     skip_hint="legitimate for class-weighted losses (per-class weights are not class-permutation equivariant)",
     order=32,
+    compiles=planned(("float64",)),
 )

@@ -1,9 +1,12 @@
 """``dtypes``: the same inputs in float16, bfloat16, float32 and float64 give consistent results.
 
-Notation and shapes: one stack of :data:`~lossguard.checks.finite.STACK_SIZE` cases per menu
-shape (class axis last) — the extreme-logit ladder up to |z| = 1e4 and the battery's random
-cases — moved onto values every dtype holds exactly (:func:`~lossguard.ladders.common_grid`), so
-the dtypes see identical inputs and differ only in their arithmetic.
+Notation and shapes: one stack per shape of ``ctx.cells_for(dtype)`` (class axis last; below
+float64 the menu's last shape unless the effort is thorough) — the extreme-logit ladder up to
+|z| = 1e4, filled with the battery's random cases up to its compiled call size
+(:func:`~lossguard.checks.finite.fill_to`) — moved onto values every dtype holds exactly
+(:func:`~lossguard.ladders.common_grid`), so the dtypes see identical inputs and differ only in
+their arithmetic. At large shapes the ladder is packed into few cases, rows taking the (pattern,
+magnitude) pairs in turn, nearby magnitudes together (:func:`~lossguard.cases.ladder_stack`).
 
 Formula: with v*, g* the oracle (the declared reference in float64 or, without one, the loss's
 own float64 value and gradient at the same inputs), a result in dtype d passes when it is finite
@@ -34,9 +37,9 @@ from ..evaluate import NoGradient
 from ..ladders import magnitudes
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
-from ._base import Check, Context
+from ._base import Check, Context, planned
 from ._compare import examples_from, mismatch
-from .finite import STACK_SIZE, fill_to, on_grid, own_float64, per_case_finite, reduced_fits, reference_batch
+from .finite import fill_to, on_grid, own_float64, per_case_finite, reduced_fits, reference_batch
 from .reference import case_scale, gradient_term_scale
 
 __all__ = ["CHECK", "LARGE_BATCH", "check_dtypes", "common_stack", "large_batch"]
@@ -49,8 +52,8 @@ BATCH_MARGIN = 16.0
 def common_stack(ctx: Context, cell: Cell) -> CaseStack:
     """Ladder (|z| ≤ 1e4) and random cases on the grid shared by every dtype."""
     ladder = ladder_stack(ctx.spec, cell, ctx.rng(f"dtypes ladder {cell}"), mags=magnitudes("float16"),
-                          domain=ctx.domain)
-    return on_grid(fill_to(ladder, ctx.random_cases(cell)), DTYPES)
+                          domain=ctx.domain, dtypes=["float16"])
+    return on_grid(fill_to(ladder, lambda: ctx.random_cases(cell)), DTYPES)
 
 
 def large_batch(ctx: Context) -> CaseStack:
@@ -126,9 +129,12 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
     oracle = ""
     low = tuple(d for d in dtypes if spec.reference is not None or d != "float64")
     for cell in ctx.cells:
+        here = [d for d in low if cell in ctx.cells_for(d)]
+        if not here:
+            continue
         stack = common_stack(ctx, cell)
         exp_v, exp_g, oracle = _oracle(ctx, stack)
-        for dtype in low:
+        for dtype in here:
             bad, found, rule = _compare(ctx, stack, dtype, exp_v, exp_g)
             rules.add(rule)
             total += len(stack)
@@ -165,10 +171,17 @@ def _run(ctx: Context) -> CheckResult:
     return check_dtypes(ctx)
 
 
+def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:
+    """The shapes of the common stacks in every dtype, and the large batch in float16."""
+    c0 = ctx.cells[0]
+    return planned(DTYPES)(ctx) + [("vg", "float16", Cell(LARGE_BATCH, c0.c, None))]
+
+
 CHECK = Check(
     name="dtypes",
     summary="float16, bfloat16, float32 agree with float64 within the dtype's error model, large batch included",
     run=_run,
     skip_hint="skip only if the loss never runs below float32",
     order=40,
+    compiles=_compiles,
 )

@@ -11,13 +11,15 @@ Oracles compared (all in float64, on whole stacks):
 - reverse mode (the VJP with c) · v against central finite differences of φ along v
   (Richardson table, :mod:`lossguard._fd`); where the one-sided differences disagree the point
   is a kink, and the autodiff value need only lie between the two one-sided derivatives;
-- forward mode (JVP along v) against reverse mode, so the two autodiff modes agree;
+- forward mode (JVP along v) against reverse mode, so the two autodiff modes agree (on the last
+  stack only: forward mode is a compiled function of its own);
 - a declared closed-form ``grad`` · v against finite differences of Σ L (the gradient of the
   sum of the outputs; for numpy losses it *is* the reverse oracle);
 - the registry's hand-derived gradient against reverse mode, when a reference is declared;
 - per-example outputs: the VJP with a one-hot cotangent e_i vanishes outside row i;
 - float32: reverse mode in float32 against reverse mode in float64 on the same float32-rounded
-  cases (finite values only; non-finite float32 gradients are the ``finite`` check's business).
+  cases (finite values only; non-finite float32 gradients are the ``finite`` check's business),
+  at the shapes of ``Context.cells_for("float32")``.
 
 Cases: the battery's random and extreme-ladder cases plus special points where implementations
 branch: all-zero logits, exact ties (with and without the labelled class), exact zeros among
@@ -57,7 +59,8 @@ import numpy as np
 
 from .. import _fd
 from .._taylor import TaylorResult, taylor_along, taylor_orders
-from ..cases import CaseStack, Cell, concat
+from .._budget import case_count
+from ..cases import CaseStack, Cell, concat, pack_rows
 from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
 from ..evaluate import Evaluator, NoGradient
@@ -76,7 +79,7 @@ def _point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray
     """float64 loss values at every z ± h_l v: (K, D, 2, J, *out)."""
     parts = []
     for _, pts in _fd.point_stacks(stack, v, h0):
-        vals = _fd.in_chunks(lambda idx: ev.values(pts.take(idx), "float64"), len(pts), pts.predictions[0].nbytes)
+        vals = ev.values(pts, "float64")  # point_stacks bounds the memory; the adapter its calls
         parts.append(vals.reshape((-1,) + v.shape[1:2] + (2, _fd.LEVELS) + out))
     return np.concatenate(parts)
 
@@ -167,7 +170,7 @@ def _directional_pair(ctx: Context, tally: _Tally, stack: CaseStack, what: str, 
     return bad.any(axis=1), bad
 
 
-def _probe(ctx: Context, stack: CaseStack, tally: _Tally) -> None:
+def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True) -> None:
     spec, ev = ctx.spec, ctx.evaluator
     rng = ctx.rng(f"gradient {stack.cell}")
     stack = stack.with_predictions(_fd.snap(stack.predictions))
@@ -232,9 +235,9 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally) -> None:
     bad |= case_bad
     if kd_bad.any():
         kk, dd = np.argwhere(kd_bad)[np.argmax(np.where(kd_bad, np.abs(slope - fd.central.value), -1)[kd_bad])]
-        def phi(points: np.ndarray) -> np.ndarray:  # plain calls, no new compilation: it runs once
+        def phi(points: np.ndarray) -> np.ndarray:  # the cell's compiled function: no new compilation
             one = CaseStack(points, np.repeat(y[kk:kk + 1], len(points), axis=0), cell)
-            return _sum_out(ev.values(one, "float64", eager=True) * c[kk][None], 1)
+            return _sum_out(ev.values(one, "float64") * c[kk][None], 1)
 
         t = taylor_along(phi, z[kk], v[kk, dd], float(h0[kk, dd]), float(f0s["c"][kk]), float(slope[kk, dd]),
                          float(noise["c"][kk]))
@@ -245,7 +248,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally) -> None:
                             "incoming cotangent")
 
     # forward mode against reverse mode (JAX only: other adapters derive forward from reverse)
-    if isinstance(ev.adapter, JaxAdapter):
+    if forward and isinstance(ev.adapter, JaxAdapter):
         try:
             tang = np.stack([ev.jvp(stack, np.ascontiguousarray(v[:, j]), "float64")[1] for j in range(d)], axis=1)
             fwd = _sum_out(tang * c.reshape((k, 1) + out), 2)
@@ -290,7 +293,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally) -> None:
 
     if ev.output == "per_example":
         bad |= _row_leaks(ctx, tally, stack, out, scale, big_g, n)
-    if ev.has_autodiff:
+    if ev.has_autodiff and stack.cell in ctx.cells_for("float32"):
         bad |= _float32(ctx, tally, stack, c, scale, big_g * cmax, n, ~bad)
     tally.bad += int(bad.sum())
 
@@ -367,8 +370,10 @@ def _run(ctx: Context) -> CheckResult:
 
 
 def special_cases(ctx: Context, cell: Cell) -> CaseStack:
-    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`)."""
-    return _fd.branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain)
+    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`);
+    at large shapes packed row by row into fewer cases (:func:`lossguard.cases.pack_rows`)."""
+    stack = _fd.branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain)
+    return pack_rows(stack, case_count(len(stack), cell.elements(), least=1))
 
 
 def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
@@ -378,8 +383,8 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     ev = ctx.evaluator
     calls0 = ev.calls
     tally = _Tally()
-    for stack in stacks:
-        _probe(ctx, stack, tally)
+    for i, stack in enumerate(stacks):
+        _probe(ctx, stack, tally, forward=i == len(stacks) - 1)  # forward mode compiles: one stack
     worst = [e for _, e in sorted(tally.worst, key=lambda e: -(e[0] if not np.isnan(e[0]) else np.inf))][:3]
     order = float(np.median(tally.orders)) if tally.orders else float("nan")
     oracles = ", ".join(sorted(tally.oracles))
@@ -413,10 +418,17 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     )
 
 
+def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:
+    """float64 value-and-gradient at every cell, float32 at its cells, forward mode at the last."""
+    return ([("vg", "float64", cell) for cell in ctx.cells] + [("jvp", "float64", ctx.cells[-1])]
+            + [("vg", "float32", cell) for cell in ctx.cells_for("float32")])
+
+
 CHECK = Check(
     name="gradient",
     summary="autodiff, declared and registry gradients agree with float64 finite differences (kink-aware)",
     run=_run,
     skip_hint="skip only for a loss that is never differentiated",
     order=30,
+    compiles=_compiles,
 )

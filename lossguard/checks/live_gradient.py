@@ -1,6 +1,7 @@
 """``live-gradient``: confidently wrong predictions still get a gradient to learn from.
 
-Notation and shapes: one menu shape (class axis last); hard targets (labels, one-hot rows, 0/1).
+Notation and shapes: one shape, the first of ``ctx.cells_for("float32")`` (class axis last); five
+cases, one per magnitude; hard targets (labels, one-hot rows, 0/1).
 A row is *wrong by M* when the label's logit is −M and another class's is +M (binary: the logit
 is −M·(2y − 1)). Every row of a case is wrong by the same M, with the same labels and the same
 competing classes at every M, so row i at M compares with row i at the moderate M₀ = 1.
@@ -30,7 +31,6 @@ from ..result import CheckResult, Example
 from ..tolerance import unit_roundoff
 from ._base import Check, Context
 from ._compare import replay
-from .finite import STACK_SIZE, fill_to
 
 __all__ = ["CHECK", "MODERATE", "CONFIDENT", "wrong_stack"]
 
@@ -75,9 +75,9 @@ def _run(ctx: Context) -> CheckResult:
     spec, ev = ctx.spec, ctx.evaluator
     u = unit_roundoff(ev.computed_dtype(DTYPE))
     mags = (MODERATE,) + CONFIDENT
-    cell = ctx.cells[0]
+    cell = ctx.cells_for(DTYPE)[0]  # a shape float32 is compiled for anyway
     stack = wrong_stack(ctx, cell, mags)
-    _, grads = ev.value_and_grad(fill_to(stack, ctx.random_cases(cell), STACK_SIZE), DTYPE)
+    _, grads = ev.value_and_grad(stack, DTYPE)
     r = _row_norms(grads[: len(mags)], stack.targets, spec.kind)
     base = r[0]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -134,4 +134,5 @@ CHECK = Check(
     applies=_applies,
     skip_hint="skip for losses designed to ignore confidently wrong examples (noise-robust losses)",
     order=45,
+    compiles=lambda ctx: [("vg", DTYPE, ctx.cells_for(DTYPE)[0])],
 )

@@ -13,8 +13,12 @@ float64 values with −inf replaced by min(z) − D for D = 1e2, 1e4, 1e8 are ta
 their differences do not grow. A loss that puts target mass on a masked class (label smoothing)
 has an infinite true value there; such cases are not judged. A fully masked row (every class
 −inf, the label included) has no meaningful value: what the loss does with it is reported, not
-failed. In float32 a few cases are also evaluated by plain calls without jit, because a compiler
-may rewrite onehot · log p into a gather and hide the 0 · (−inf) a training loop would meet.
+failed. A few cases are also evaluated by plain calls without jit (in the dtype and at the shape
+the battery's plain calls share, :data:`~lossguard.checks._base.EAGER_DTYPE` and
+:attr:`~lossguard.checks._base.Context.eager_cell`), because a
+compiler may rewrite onehot · log p into a gather and hide the 0 · (−inf) a training loop would
+meet. Lower precisions use :meth:`~lossguard.checks._base.Context.cells_for`; large shapes get
+fewer cases (:func:`lossguard._budget.case_count`).
 """
 
 from __future__ import annotations
@@ -23,14 +27,15 @@ import time
 
 import numpy as np
 
+from .._budget import case_count
 from ..cases import CaseStack, Cell, concat
 from ..evaluate import NoGradient
 from ..ladders import mask_non_targets, sparse_simplex_rows
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
-from ._base import Check, Context, only
+from ._base import EAGER_DTYPE, Check, Context, only, planned
 from ._compare import replay
-from .finite import STACK_SIZE, fill_to, own_float64, per_case_finite, reduced_fits, reference_batch
+from .finite import own_float64, per_case_finite, reduced_fits, reference_batch
 
 __all__ = ["CHECK", "check_masking", "masked_cases", "DEPTHS"]
 
@@ -42,22 +47,24 @@ EAGER_CASES = 8
 
 
 def masked_cases(ctx: Context, cell: Cell) -> tuple[CaseStack, np.ndarray]:
-    """(stack, mask): :data:`MASKED_CASES` masked cases, the last one with a fully masked row 0."""
+    """(stack, mask): :data:`MASKED_CASES` masked cases (fewer for large shapes), the last one
+    with a fully masked row 0."""
     rng = ctx.rng(f"masking {cell}")
     base = ctx.random_cases(cell)
-    take = base.take(np.arange(MASKED_CASES) % len(base))
+    count = case_count(MASKED_CASES, int(np.prod(cell.pred_shape())))
+    take = base.take(np.arange(count) % len(base))
     z = take.predictions.copy()
     z[1::2] *= 100.0  # every other case at a confident scale, so masks meet saturated rows
     y = take.targets.copy()
     if ctx.spec.kind == "distribution":
-        y = np.stack([sparse_simplex_rows(rng, cell.n, cell.c or 2) for _ in range(MASKED_CASES)])
+        y = np.stack([sparse_simplex_rows(rng, cell.n, cell.c or 2) for _ in range(count)])
     mask = np.stack([mask_non_targets(rng, y[k], cell.c or 2, ignore_label=ctx.spec.ignore_label)
-                     for k in range(MASKED_CASES)])
+                     for k in range(count)])
     mask[-1, 0, :] = True  # the report-only case: row 0 loses every class
     z = np.where(mask, -np.inf, z)
-    scale = np.max(np.abs(np.where(mask, 0.0, z)).reshape(MASKED_CASES, -1), axis=1)
+    scale = np.max(np.abs(np.where(mask, 0.0, z)).reshape(count, -1), axis=1)
     notes = [f"masked {int(mask[k].sum())} of {mask[k].size} logits, scale {scale[k]:.3g}"
-             for k in range(MASKED_CASES)]
+             for k in range(count)]
     notes[-1] = "row 0 fully masked (report only)"
     return CaseStack(z, y, cell, notes), mask
 
@@ -68,7 +75,7 @@ def _limit_oracle(ctx: Context, stack: CaseStack, mask: np.ndarray) -> np.ndarra
     z = stack.predictions
     low = np.min(np.where(mask, np.inf, z).reshape(k, -1), axis=1).reshape((k,) + (1,) * (z.ndim - 1))
     deep = concat([stack.with_predictions(np.where(mask, low - d, z)) for d in DEPTHS])
-    v, _ = own_float64(ctx, fill_to(deep, deep))
+    v, _ = own_float64(ctx, deep)
     v1, v2, v3 = (v[i * k:(i + 1) * k].reshape(k, -1) for i in range(3))
     n = op_count(stack.cell.n, stack.cell.c or 1)
     tol = rounding_allowance(np.abs(v3).max(axis=1), np.ones(k), dtype="float64", n_ops=n).atol
@@ -95,6 +102,24 @@ def _describe(a: np.ndarray) -> str:
     return "nan" if np.any(np.isnan(a)) else "inf"
 
 
+def _plain_calls(ctx: Context, stack: CaseStack, need: np.ndarray, worst: list[Example]) -> int:
+    """A few judged cases by plain calls: the number whose value is not finite."""
+    # compilers may rewrite onehot · log p into a gather and hide a 0 · (−inf); a plain call,
+    # as a training loop without jit makes it, does not
+    idx = np.flatnonzero(need)[:EAGER_CASES]
+    if not idx.size:
+        return 0
+    plain = ctx.evaluator.values(stack.take(idx), EAGER_DTYPE, eager=True)
+    bad = ~per_case_finite(plain, idx.size)
+    for j in np.flatnonzero(bad)[:1]:
+        i = int(idx[j])
+        worst.append(Example(what=f"value in {EAGER_DTYPE} (plain call, no jit)", predictions=stack.predictions[i],
+                             targets=stack.targets[i], got=plain[j], expected="finite", abs_err=float("inf"),
+                             note=stack.note(i), replay=replay(ctx.spec, stack.predictions[i], stack.targets[i],
+                                                               EAGER_DTYPE)))
+    return int(bad.sum())
+
+
 def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckResult:
     """The check on the given dtypes (default: float32 and float64 at quick effort, else all)."""
     t0 = time.perf_counter()
@@ -108,27 +133,17 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
         stack, mask = masked_cases(ctx, cell)
         judged = np.arange(len(stack)) < len(stack) - 1  # the fully masked case is report-only
         fin, ref_v, oracle_name = _true_finite(ctx, stack, mask)
-        padded = fill_to(stack, ctx.random_cases(cell), STACK_SIZE)
         for dtype in dtypes:
+            if cell not in ctx.cells_for(dtype):
+                continue
             try:
-                vals, grads = ev.value_and_grad(padded, dtype)
+                vals, grads = ev.value_and_grad(stack, dtype)
             except NoGradient:
-                vals, grads = ev.values(padded, dtype), None
+                vals, grads = ev.values(stack, dtype), None
             k = len(stack)
             vals, grads = vals[:k], None if grads is None else grads[:k]
             need = judged & fin & (reduced_fits(ctx, ref_v, k, dtype, cell) if spec.reference else True)
             bad_v = need & ~per_case_finite(vals, k)
-            eager = ""
-            if dtype == "float32" and not bad_v.any() and need.any():
-                # compilers may rewrite onehot · log p into a gather and hide a 0 · (−inf); a plain
-                # call, as a training loop without jit makes it, does not
-                idx = np.flatnonzero(need)[:EAGER_CASES]
-                plain = ev.values(stack.take(idx), dtype, eager=True)
-                bad_v[idx] = ~per_case_finite(plain, idx.size)
-                if bad_v.any():
-                    vals = vals.copy()
-                    vals[idx] = plain.reshape(vals[idx].shape)
-                    eager = " (plain call, no jit)"
             bad_g = need & ~per_case_finite(grads, k) if grads is not None else np.zeros(k, bool)
             leak = np.zeros(k, bool)
             if grads is not None:
@@ -141,7 +156,6 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
             for i in np.flatnonzero(bad)[:1]:
                 what = "value" if bad_v[i] else "gradient" if bad_g[i] else "gradient at a masked class"
                 what += f" in {dtype}"
-                what += eager if bad_v[i] else ""
                 got = vals[i] if bad_v[i] else grads[i]  # type: ignore[index]
                 exp = "finite" if (bad_v[i] or bad_g[i]) else "exactly 0 at every masked (−inf) entry"
                 worst.append(Example(what=what, predictions=stack.predictions[i], targets=stack.targets[i],
@@ -150,6 +164,9 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
             if dtype == "float64" or not full_row:
                 full_row = {"value": _describe(vals[-1]),
                             "gradient": _describe(grads[-1]) if grads is not None else "n/a"}
+        if cell == ctx.eager_cell and not failed:
+            failed += _plain_calls(ctx, stack, judged & fin & (
+                reduced_fits(ctx, ref_v, len(stack), EAGER_DTYPE, cell) if spec.reference else True), worst)
     full = (f"a fully masked row gives value {full_row.get('value')}, gradient {full_row.get('gradient')} "
             "(reported, not failed)")
     if failed:
@@ -184,4 +201,5 @@ CHECK = Check(
     applies=only("categorical", "distribution", inputs="logits"),
     skip_hint="skip if the loss is never given masked (−inf) logits",
     order=30,
+    compiles=lambda ctx: planned(("float32", "float64") if ctx.effort == "quick" else DTYPES)(ctx),
 )

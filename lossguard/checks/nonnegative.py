@@ -14,8 +14,9 @@ not known to be nonnegative makes it optional (``expect``).
 
 Error model: a correct evaluation may round a true 0 to −γ_n (|v| + max|z|) (the cancellation in
 log-sum-exp(z) − z_y involves numbers of size max|z|), so the test is v ≥ −γ_n (|v| + max|z|)
-per :mod:`lossguard.tolerance`, in float64 and (except at effort "quick") float32. Non-finite values are not judged (the
-``finite`` check's job), except −inf, which is below zero.
+per :mod:`lossguard.tolerance`, in float64 and (except at effort "quick") float32, the latter at
+the shapes of ``ctx.cells_for("float32")``. Non-finite values are not judged (the ``finite``
+check's job), except −inf, which is below zero.
 
 Example:
     >>> import jax, jax.numpy as jnp
@@ -35,13 +36,13 @@ import time
 import numpy as np
 
 from .._search import Part, Tally, single, value_and_grad
-from ..cases import CaseStack
+from ..cases import CaseStack, Cell
 from ..references import get_reference
 from ..result import CheckResult, Example
 from ..spec import LossSpec
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context
+from ._base import Check, Context, planned
 from ._compare import replay
 from .reference import case_scale
 
@@ -62,6 +63,11 @@ def _dtypes(ctx: Context) -> tuple[str, ...]:
     return DTYPES_CHECKED.get(ctx.effort, DTYPES_CHECKED["default"])
 
 
+def _dtypes_at(ctx: Context, cell: Cell) -> tuple[str, ...]:
+    """The dtypes judged at ``cell``: float32 only at the shapes it is compiled for (``cells_for``)."""
+    return tuple(d for d in _dtypes(ctx) if cell in ctx.cells_for(d))
+
+
 def nonnegative_parts(ctx: Context, stack: CaseStack) -> tuple[list[Part], np.ndarray]:
     """v ≥ −allowance for each dtype; also which cases had a non-finite value (not judged)."""
     spec = ctx.spec
@@ -69,7 +75,7 @@ def nonnegative_parts(ctx: Context, stack: CaseStack) -> tuple[list[Part], np.nd
     s = case_scale(ctx, stack.predictions)
     n_ops = op_count(cell.n, cell.c or cell.d or 1)
     parts, unjudged = [], np.zeros(k, bool)
-    for dtype in _dtypes(ctx):
+    for dtype in _dtypes_at(ctx, cell):
         v, _ = value_and_grad(ctx, stack, dtype)
         a = rounding_allowance(v, s, dtype=ctx.evaluator.computed_dtype(dtype), n_ops=n_ops)
         with np.errstate(invalid="ignore"):
@@ -127,4 +133,5 @@ CHECK = Check(
     default=_default,
     skip_hint="legitimate for a loss that is not nonnegative by design (a likelihood ratio, a deliberate offset)",
     order=38,
+    compiles=lambda ctx: planned(_dtypes(ctx))(ctx),
 )

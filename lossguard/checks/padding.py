@@ -44,7 +44,7 @@ from ..result import CheckResult, Example
 from ..spec import LossSpec
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context
+from ._base import Check, Context, planned
 from ._compare import mismatch, replay
 from .batch import halves, join, split_cell, take_rows
 from .reference import case_scale, gradient_term_scale
@@ -160,4 +160,5 @@ CHECK = Check(
     applies=_applies,
     skip_hint="legitimate only if padding rows never reach the loss",
     order=36,
+    compiles=lambda ctx: planned(("float64",))(ctx) + [("vg", "float64", halves(split_cell(ctx.cells)))],
 )

@@ -21,7 +21,9 @@ gradient descent with backtracking from z*, next to q (label smoothing predicts
 (1 − ε) q + ε/C; focal loss predicts something closer to uniform).
 
 When it runs: by default for a declared reference known to be proper (categorical_ce,
-kl_divergence, bce with their default parameters); otherwise only with ``expect``.
+kl_divergence, bce with their default parameters); otherwise only with ``expect``. Per shape it
+draws as many target distributions as the battery has standard cases, fewer at a large shape
+(:func:`lossguard._budget.case_count`), each costing 1 + :data:`DIRECTIONS` evaluations.
 
 Error model: ∇E(z*) is a sum of terms of size T = Σ_rows |g_row| that cancel exactly, so it may
 round to γ_n (1 + max|z|)·T (the normwise rule of :mod:`lossguard.tolerance` with an exact value
@@ -51,6 +53,7 @@ import numpy as np
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
+from .._budget import case_count
 from .._search import Part, Tally, mismatch_examples, value_and_grad
 from ..cases import CaseStack, Cell, to_inputs
 from ..references import get_reference
@@ -58,7 +61,7 @@ from ..result import CheckResult, Example
 from ..spec import LossSpec
 from ..strategies import simplex_targets
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context
+from ._base import Check, Context, planned
 from ._compare import fmt, mismatch
 from .reference import gradient_term_scale
 
@@ -230,7 +233,8 @@ def _run(ctx: Context) -> CheckResult:
     failing: tuple[Cell, np.ndarray, np.ndarray] | None = None
     usable = [c for c in ctx.cells if spec.kind != "categorical" or c.n >= (c.c or 1)]
     for cell in usable:
-        k = len(ctx.standard_cases(cell))  # the battery's stack size: compiled functions are shared
+        # as many target distributions as the battery has standard cases, fewer for a large cell
+        k = case_count(len(ctx.standard_cases(cell)), cell.elements())
         raw = _draw(spec, cell, ctx.rng(f"proper {cell}"), k)
         parts = proper_parts(ctx, cell, raw, ctx.rng(f"proper directions {cell}"))
         tally.add(parts, k)
@@ -289,4 +293,5 @@ CHECK = Check(
     default=_default,
     skip_hint="legitimate for losses that distort probabilities by design (focal loss, label smoothing, class weights)",
     order=42,
+    compiles=planned(("float64",)),
 )

@@ -16,7 +16,7 @@ from ..evaluate import NoGradient
 from ..references import evaluate_reference, get_reference
 from ..result import CheckResult
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context
+from ._base import Check, Context, planned
 from ._compare import examples_from, mismatch
 
 __all__ = ["CHECK", "reference_stack_values", "case_scale", "gradient_term_scale"]
@@ -140,4 +140,5 @@ CHECK = Check(
     applies=_applies,
     skip_hint="skip only if the loss is meant to differ from the reference",
     order=10,
+    compiles=planned(("float64",)),
 )

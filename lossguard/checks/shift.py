@@ -8,7 +8,9 @@ Formula: softmax(z + c·1) = softmax(z) (numerator and denominator share the fac
 loss that reads the logits only through the softmax has L(z + c·1) = L(z), and differentiating
 along 1 gives Σ_c ∂L/∂z_ic = 0 for every row i. Shifts tried: a random constant per row (scale
 1) and the whole batch by +1e3, +1e4 and −1e4, where an exponential without max subtraction
-overflows or underflows.
+overflows or underflows. At large shapes (:func:`lossguard._budget.case_count`) the four are
+packed into one shifted copy, its rows taking them in turn, so the check costs two evaluations
+of each case rather than five.
 
 Error model: the shifted logits are themselves rounded, |fl(z + c) − (z + c)| ≤ u (|z| + |c|), and
 a stable evaluation cancels numbers of that size, so a correct implementation may move the value
@@ -38,12 +40,13 @@ import time
 
 import numpy as np
 
+from .._budget import case_count
 from .._search import Part, Tally, mismatch_examples, single, value_and_grad
 from ..cases import CaseStack
 from ..result import CheckResult
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context, only
+from ._base import Check, Context, only, planned
 from ._compare import mismatch
 from .reference import case_scale, gradient_term_scale
 
@@ -64,6 +67,24 @@ HINT = (
 
 def _finite_cases(a: np.ndarray) -> np.ndarray:
     return np.all(np.isfinite(a.reshape(a.shape[0], -1)), axis=1)
+
+
+def _shifts(stack: CaseStack, rng: np.random.Generator) -> list[tuple[str, np.ndarray]]:
+    """(label, constants (K, N, 1)) of each shifted copy of ``stack`` to evaluate.
+
+    One copy per entry of :data:`SHIFTS` while the budget affords them (the menu's shapes);
+    at large shapes a single copy whose rows take the shifts in turn (row i the shift i mod 4).
+    """
+    k, n = len(stack), stack.cell.n
+    if n >= len(SHIFTS) and case_count(len(SHIFTS) * k, stack.cell.elements(), least=1) < len(SHIFTS) * k:
+        c = rng.uniform(-3.0, 3.0, size=(k, n, 1))
+        turn = np.arange(n) % len(SHIFTS)
+        for j, (_, const) in enumerate(SHIFTS):
+            if const is not None:
+                c[:, turn == j] = const
+        return [("a shift per row (" + ", ".join(label for label, _ in SHIFTS) + ", in turn)", c)]
+    return [(label, rng.uniform(-3.0, 3.0, size=(k, n, 1)) if const is None else np.full((k, n, 1), const))
+            for label, const in SHIFTS]
 
 
 def shift_parts(ctx: Context, stack: CaseStack, rng: np.random.Generator) -> tuple[list[Part], np.ndarray]:
@@ -90,11 +111,7 @@ def shift_parts(ctx: Context, stack: CaseStack, rng: np.random.Generator) -> tup
         m = mismatch(g0.sum(axis=-1), np.zeros(g0.shape[:-1]), a_g.atol[..., 0] * (cell.c or 1))
         parts.append(part("gradient row sums", m, "row sums: C·" + a_g.rule, [("g", stack)],
                           "every row of the gradient of g to sum to 0"))
-    for label, const in SHIFTS:
-        if const is None:
-            c = rng.uniform(-3.0, 3.0, size=(k, cell.n, 1))
-        else:
-            c = np.full((k, cell.n, 1), const)
+    for label, c in _shifts(stack, rng):
         shifted = stack.with_predictions(stack.predictions + c)
         v1, g1 = value_and_grad(ctx, shifted)
         s = scale + np.max(np.abs(c).reshape(k, -1), axis=1)  # the cancelling magnitude max|z| + |c|
@@ -138,4 +155,5 @@ CHECK = Check(
     applies=only("categorical", "distribution", inputs="logits"),
     skip_hint="legitimate for a loss with a deliberate logit-level term (z-loss, logit penalty, logit clipping)",
     order=30,
+    compiles=planned(("float64",)),
 )
