@@ -184,12 +184,14 @@ def main() -> None:
             if not path.exists():
                 path.write_text(_module(kind, args.effort))
             env = {**base_env, **(extra_env if with_env else {})}
-            label = f"{style} + {' '.join(args.env)}" if with_env else style
+            label = f"{style} +env" if with_env else style
             f = measure(path, extra, args.effort, args.repeats, env, warm_up=with_env, ns=(0, 1, 2))
             figures[label] = f
             met = "-" if style == "startup" else "yes" if f["speedup"] >= TARGET else "no"
             rows.append([label, f["w0"], f["w1"], f["w2"], f["speedup"], met,
                          f["c1"], f["c2"], f["outcome"], _load()])
+    if extra_env:
+        print(f"+env: {' '.join(args.env)} (after one untimed warm-up run)")
     table(["suite style", "no -n s", "-n 1 s", "-n 2 s", "speed-up", f"≥ {TARGET}×", "-n 1 CPU s",
            "-n 2 CPU s", "outcome (-n 2)", "load after"], rows)
     if "plugin" in figures:

@@ -158,3 +158,13 @@ def test_cells_for_keeps_float64_everywhere_and_lower_precisions_at_one_shape():
     assert default.cells_for("float64") == default.cells
     assert default.cells_for("float16") == default.cells[-1:]
     assert thorough.cells_for("bfloat16") == thorough.cells
+
+
+def test_background_threads_step_aside_when_xdist_has_a_worker_per_core(monkeypatch):
+    monkeypatch.setattr(jax_loss.os, "sched_getaffinity", lambda pid: {0, 1}, raising=False)
+    monkeypatch.delenv("PYTEST_XDIST_WORKER_COUNT", raising=False)
+    assert jax_loss.compile_threads() == jax_loss.COMPILE_THREADS
+    monkeypatch.setenv("PYTEST_XDIST_WORKER_COUNT", "1")
+    assert jax_loss.compile_threads() == jax_loss.COMPILE_THREADS
+    monkeypatch.setenv("PYTEST_XDIST_WORKER_COUNT", "2")
+    assert jax_loss.compile_threads() == 1

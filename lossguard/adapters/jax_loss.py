@@ -12,6 +12,7 @@ Both are scoped and restored on exit.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Any
@@ -31,6 +32,19 @@ __all__ = ["JaxAdapter", "Planned", "bucket"]
 Planned = tuple[str, str, tuple[int, ...], tuple[int, ...], bool]
 #: Background threads compiling planned functions (XLA compiles without holding the GIL).
 COMPILE_THREADS = 2
+
+
+def compile_threads() -> int:
+    """:data:`COMPILE_THREADS`, or 1 when pytest-xdist already runs a worker per core (read from
+    the worker's environment, never set): more threads would only compete with the workers."""
+    workers = os.environ.get("PYTEST_XDIST_WORKER_COUNT", "")
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        cores = os.cpu_count() or 1
+    if workers.isdigit() and int(workers) >= cores:
+        return 1
+    return COMPILE_THREADS
 
 
 def bucket(k: int, case_elements: int = 1) -> int:
@@ -163,7 +177,7 @@ class JaxAdapter:
             jobs.append((key, lowered))
         if not jobs:
             return
-        pool = ThreadPoolExecutor(max_workers=COMPILE_THREADS, thread_name_prefix="lossguard-compile")
+        pool = ThreadPoolExecutor(max_workers=compile_threads(), thread_name_prefix="lossguard-compile")
         for key, lowered in jobs:
             self._pending[key] = pool.submit(lowered.compile)
         pool.shutdown(wait=False)  # threads end when their queue is empty
