@@ -203,5 +203,10 @@ class Evaluator:
             jobs.append((op, dtype, pred, targ, kind != "categorical"))
         self.adapter.prepare(jobs)
 
+    def settle(self) -> None:
+        """Cancel background compilations that no check has asked for (the battery is over)."""
+        if isinstance(self.adapter, jax_loss.JaxAdapter):
+            self.adapter.cancel_pending()
+
     def describe(self) -> dict[str, Any]:
         return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction}

@@ -143,6 +143,7 @@ def run(
             results.append(CheckResult(name=check.name, verdict="skip", summary=reason))
             continue
         results.append(run_check(check, ctx))
+    ev.settle()
     if progress is not None:
         progress("done", len(battery), len(battery))
     return Result(

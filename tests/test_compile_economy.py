@@ -168,3 +168,14 @@ def test_background_threads_step_aside_when_xdist_has_a_worker_per_core(monkeypa
     assert jax_loss.compile_threads() == jax_loss.COMPILE_THREADS
     monkeypatch.setenv("PYTEST_XDIST_WORKER_COUNT", "2")
     assert jax_loss.compile_threads() == 1
+
+
+def test_planned_compilations_nobody_asked_for_are_dropped_when_the_battery_ends():
+    spec = declare(ce, kind="categorical")
+    ev = Evaluator(spec)
+    cells = [Cell(n, 5) for n in range(2, 12)]
+    ev.prepare([("vg", "float32", c) for c in cells])  # ten compilations, two threads
+    ev.settle()
+    assert not ev.adapter._pending
+    # the ones that never started can be planned again by a later battery on this evaluator
+    assert len(ev.adapter._prepared) < len(cells)

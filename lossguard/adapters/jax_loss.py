@@ -182,6 +182,14 @@ class JaxAdapter:
             self._pending[key] = pool.submit(lowered.compile)
         pool.shutdown(wait=False)  # threads end when their queue is empty
 
+    def cancel_pending(self) -> None:
+        """Drop planned compilations that have not started (a battery that ended early, or ran
+        fewer checks than planned); one already compiling finishes in its thread."""
+        for key, fut in list(self._pending.items()):
+            if fut.cancel():
+                self._prepared.discard(key)  # may be planned again by a later battery
+        self._pending.clear()
+
     def _await(self, op: str, dtype: str, shape: tuple[int, ...]) -> None:
         fut = self._pending.pop((op, dtype, shape), None)
         if fut is not None:

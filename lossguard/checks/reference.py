@@ -59,11 +59,12 @@ def reference_stack_values(
     ref = get_reference(spec.reference or "")
     vals, grads = [], []
     for k in range(predictions.shape[0]):
-        v, g = evaluate_reference(
-            ref, predictions[k], targets[k], inputs=spec.inputs, ignore_label=spec.ignore_label,
-            reduction=ctx.evaluator.reduction, params=dict(spec.params),
-            cotangent=None if cotangent is None else cotangent[k],
-        )
+        with np.errstate(all="ignore"):  # a true gradient may overflow (−a/p at p ≈ 0): inf is the answer
+            v, g = evaluate_reference(
+                ref, predictions[k], targets[k], inputs=spec.inputs, ignore_label=spec.ignore_label,
+                reduction=ctx.evaluator.reduction, params=dict(spec.params),
+                cotangent=None if cotangent is None else cotangent[k],
+            )
         vals.append(v)
         grads.append(g)
     return np.stack(vals), np.stack(grads)

@@ -94,8 +94,8 @@ def _probe(ctx: Context, stack: CaseStack, found: dict) -> None:
     gp = _point_grads(ctx, stack, v, h0, c)
     lead = (k, d) + (1,) * len(shape)
     with np.errstate(all="ignore"):
-        gmax = np.nanmax(np.abs(np.concatenate([g0[:, None], gp.reshape((k, -1) + shape)], axis=1))
-                         .reshape(k, -1), axis=1)
+        gmax = np.fmax.reduce(np.abs(np.concatenate([g0[:, None], gp.reshape((k, -1) + shape)], axis=1))
+                              .reshape(k, -1), axis=1)  # nanmax without its warning
         eps = gamma(n, "float64") * (1.0 + scale) * (gmax + big_g)  # one gradient's rounding (normwise)
         steps = _fd.step_ladder(h0)  # (J, K, D)
         st = steps.reshape(steps.shape + (1,) * len(shape))
@@ -105,7 +105,7 @@ def _probe(ctx: Context, stack: CaseStack, found: dict) -> None:
         ok = _fd.consistent(samples, bounds, 2).reshape(k, d, -1).all(axis=2)
         ok &= np.isfinite(est.value).reshape(k, d, -1).all(axis=2)
         vmax = np.abs(v).reshape(k, d, -1).max(axis=2)
-        hmax = np.nanmax(np.abs(hv).reshape(k, d, -1), axis=2)
+        hmax = np.fmax.reduce(np.abs(hv).reshape(k, d, -1), axis=2)  # nanmax without its warning
         a_h = gamma(n, "float64") * (1.0 + scale)[:, None] * (hmax + 3.0 * big_g[:, None] * vmax)
         tol = 2.0 * est.table_error + est.rounding + a_h.reshape(lead)
         err = np.abs(hv - est.value)
