@@ -199,15 +199,21 @@ def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[py
             f"{name} = battery(...) is not collected: its name does not match python_functions "
             f"(try test_{name})"))
         return []
+    def item(check: str, bat: Battery, reason: str | None = None) -> CheckItem:
+        # an explicit node id, as pytest builds it, so that pytests that read "name[param]" ids
+        # structurally (--lf, --ff) see the same id as the one they stored
+        full = f"{name}[{check}]"
+        return CheckItem.from_parent(collector, name=full, nodeid=f"{collector.nodeid}::{full}", battery=bat,
+                                     check=check, reason=reason)
+
     if obj.spec is None:
-        return [CheckItem.from_parent(collector, name=f"{name}[declaration]", battery=obj, check="declaration")]
+        return [item("declaration", obj)]
     try:
         selection = obj.selection()
     except LossguardError as exc:
-        bad = Battery(spec=None, problem=str(exc), marks=obj.marks, module=obj.module, lineno=obj.lineno)
-        return [CheckItem.from_parent(collector, name=f"{name}[declaration]", battery=bad, check="declaration")]
-    return [CheckItem.from_parent(collector, name=f"{name}[{check}]", battery=obj, check=check, reason=reason)
-            for check, reason in selection]
+        return [item("declaration", Battery(spec=None, problem=str(exc), marks=obj.marks, module=obj.module,
+                                            lineno=obj.lineno))]
+    return [item(check, obj, reason) for check, reason in selection]
 
 
 # -- per-run state ---------------------------------------------------------------------------
@@ -233,6 +239,9 @@ class _State:
     #: whether this process runs all items of each declaration it runs (no xdist, or a lone or
     #: loadgroup worker); a worker under another --dist cannot know which items will come
     whole: bool = True
+    #: ``whole`` only because of ``--dist loadgroup``: trusted for a declaration only if xdist
+    #: really grouped its items (their node ids carry xdist's "@group" suffix)
+    grouped: bool = False
     declared: dict[int, _Declared] = field(default_factory=dict)
     live: OrderedDict[int, None] = field(default_factory=OrderedDict)  # declarations with an Evaluator
     failures: list[tuple[str, str]] = field(default_factory=list)
@@ -256,9 +265,9 @@ class _State:
             return entry.results[check]
         seed, effort = self.resolve(bat.seed, bat.effort)
         wanted = [check]
-        if self.whole:
-            wanted += [i.check for i in items if isinstance(i, CheckItem) and i.battery is bat
-                       and i.reason is None and i.check not in entry.results and i.check != check]
+        mine = [i for i in items if isinstance(i, CheckItem) and i.battery is bat]
+        if self.whole and (not self.grouped or all("@" in i.nodeid for i in mine)):
+            wanted += [i.check for i in mine if i.reason is None and i.check not in entry.results and i.check != check]
         if entry.evaluator is None:
             entry.evaluator = _safely(_new_evaluator, seed, bat.spec)
         if isinstance(entry.evaluator, str):
@@ -358,8 +367,8 @@ def pytest_configure(config: Any) -> None:
     config.addinivalue_line("markers", f"{_MARKER}: a lossguard check of a declared loss")
     values, sources = _read_settings(config)
     worker = getattr(config, "workerinput", None)  # set by xdist on its workers
-    whole = worker is None or worker.get("workercount") == 1 or _grouped(config)
-    state = _State(values, sources, whole=whole)
+    alone = worker is None or worker.get("workercount") == 1
+    state = _State(values, sources, whole=alone or _grouped(config), grouped=not alone and _grouped(config))
     config.stash[_STATE] = state
     config.pluginmanager.register(_Recorder(state), "lossguard-recorder")
 

@@ -362,6 +362,9 @@ def test_xdist_workers_run_only_the_checks_they_receive(pytester: pytest.Pyteste
     a, b = _junit(pytester.path / "serial.xml"), _junit(pytester.path / "parallel.xml")
     assert a == {"test_good[reference]": "passed", "test_scaled[reference]": "failed", "test_scaled[shift]": "passed"}
     assert {name.split("@")[0]: v for name, v in b.items()} == a
+    # xdist groups only when it can rewrite node ids (observed here: pytest-xdist 3.8 does not
+    # under pytest 9.2's structured node ids); ungrouped, the plugin behaves as under load
+    grouped = dist == "loadgroup" and all("@" in name for name in b)
     # the closing summary is assembled on the controller from the workers' reports
     parallel.stdout.fnmatch_lines(["*lossguard: failed checks*", "test_losses.py::test_scaled[[]reference[]]*"])
     log = _worker_log(pytester.path / "worker_log.jsonl")
@@ -372,11 +375,11 @@ def test_xdist_workers_run_only_the_checks_they_receive(pytester: pytest.Pyteste
         assert ran == sorted(seen["item"])
         assert sorted(seen["evaluator"]) == sorted({(loss,) for loss, _ in seen["item"]})
         # loadgroup: one battery run per declaration; load: one run per item (none can be batched)
-        assert len(seen["run"]) == len(seen["evaluator" if dist == "loadgroup" else "item"])
+        assert len(seen["run"]) == len(seen["evaluator" if grouped else "item"])
     workers_of = {loss: {w for w, seen in log.items() if any(i[0] == loss for i in seen["item"])}
                   for seen in log.values() for loss, _ in seen["item"]}
     note = "lossguard: 1 of 2 declared losses ran on more than one worker*"
-    if dist == "load":  # 3 items on 2 workers go round-robin: test_scaled's two items are split
+    if not grouped:  # 3 items on 2 workers go round-robin: test_scaled's two items are split
         assert max(len(w) for w in workers_of.values()) == 2
         parallel.stdout.fnmatch_lines([note])
     else:  # one xdist_group per declaration: each declaration on one worker
