@@ -179,3 +179,22 @@ def test_planned_compilations_nobody_asked_for_are_dropped_when_the_battery_ends
     assert not ev.adapter._pending
     # the ones that never started can be planned again by a later battery on this evaluator
     assert len(ev.adapter._prepared) < len(cells)
+
+
+def ce_host_count(z, y):
+    # a host callback with no vmap rule: JAX can jit it but not vmap it
+    n = jax.pure_callback(lambda a: np.float32(a.shape[0]), jax.ShapeDtypeStruct((), jnp.float32), y)
+    return ce(z, y) * (n / n).astype(z.dtype)
+
+
+def test_a_loss_that_cannot_be_vmapped_gives_the_same_numbers_one_case_at_a_time():
+    looped = Evaluator(declare(ce_host_count, kind="categorical"))
+    assert looped.adapter.name == "jax (one case at a time)"
+    spec = declare(ce, kind="categorical")
+    stack = random_stack(spec, Cell(5, 4), np.random.default_rng(2), 3)
+    v1, g1 = looped.value_and_grad(stack, "float64")
+    v2, g2 = Evaluator(spec).value_and_grad(stack, "float64")
+    assert v1.shape == (3,) and g1.shape == (3, 5, 4)
+    np.testing.assert_allclose(v1, v2, rtol=1e-14)  # same formula in float64: a few ulp apart at most
+    np.testing.assert_allclose(g1, g2, rtol=1e-13, atol=1e-16)
+    assert np.array_equal(looped.values(stack, "float64"), v1)

@@ -216,7 +216,8 @@ class JaxAdapter:
                 self._note_dtype(dtype, out)
                 if pick is not None:
                     out = out[pick]
-                return jax.tree_util.tree_map(lambda o: np.asarray(o, dtype=np.float64)[:m], out)
+                return jax.tree_util.tree_map(lambda o: np.asarray(o, dtype=np.float64)[slice(m)] if m is not None
+                                              else np.asarray(o, dtype=np.float64), out)
 
             if self.vectorised:
                 size = bucket(k, int(np.prod(arrays[0].shape[1:])))
@@ -228,9 +229,10 @@ class JaxAdapter:
                     args = [cast(_pad(a, size), m) for a, m in zip(part, float_mask)]
                     outs.append(fetch(fn(*args), part[0].shape[0]))
             else:
-                outs = [fetch(fn(*[cast(a[i:i + 1][0], m) for a, m in zip(arrays, float_mask)]), None)
+                # one case per call; each result gets a leading case axis of length 1
+                outs = [jax.tree_util.tree_map(lambda o: o[None], fetch(fn(*[cast(a[i], m) for a, m in
+                                                                             zip(arrays, float_mask)]), None))
                         for i in range(k)]
-                outs = [jax.tree_util.tree_map(lambda o: o[None], o) for o in outs]
             if len(outs) == 1:
                 return outs[0]
             return jax.tree_util.tree_map(lambda *xs: np.concatenate(xs), *outs)
