@@ -1,0 +1,82 @@
+"""Row packing of the gradient check's special points, and the per-case comparison's arithmetic.
+
+``Mismatch`` computes its per-case figures with few full-size temporaries (a large shape pays for
+each); here it is held against the plain element-wise definition on random arrays laced with
+the IEEE-754 special values (±0, ±inf, nan, huge, tiny).
+"""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from lossguard import declare
+from lossguard.cases import CaseStack, Cell, pack_rows
+from lossguard.checks import Context
+from lossguard.checks._compare import Mismatch
+from lossguard.checks.gradient import special_cases
+from lossguard.evaluate import Evaluator
+
+
+def ce(z, y):
+    return -jnp.mean(jnp.take_along_axis(jax.nn.log_softmax(z), y[:, None], axis=-1))
+
+
+def test_special_points_keep_six_cases_at_the_menu_and_pack_into_one_at_a_large_shape():
+    spec = declare(ce, kind="categorical")
+    ctx = Context(spec=spec, evaluator=Evaluator(spec))
+    small = special_cases(ctx, Cell(16, 10))
+    assert len(small) == 6
+    big = special_cases(ctx, Cell(1200, 2000))  # 2.4 million logits per case
+    assert len(big) == 1
+    rows = big.predictions[0]
+    # row r comes from special case r mod 6: case 0 is all zeros, case 5 has every class tied at 3
+    assert np.all(rows[0::6] == 0.0) and np.all(rows[5::6] == 3.0)
+    assert all(k in big.note(0) for k in ("all zero", "all tied", "branch thresholds"))
+
+
+def test_pack_rows_takes_rows_in_turn_and_leaves_small_stacks_alone():
+    z = np.arange(24.0).reshape(3, 4, 2)
+    s = CaseStack(z, np.zeros((3, 4), dtype=np.int64), Cell(4, 2))
+    assert pack_rows(s, 3) is s
+    two = pack_rows(s, 2)
+    # case j, row r ← case (j + r) mod 3, row r
+    assert np.array_equal(two.predictions[0], np.stack([z[0, 0], z[1, 1], z[2, 2], z[0, 3]]))
+    assert np.array_equal(two.predictions[1], np.stack([z[1, 0], z[2, 1], z[0, 2], z[1, 3]]))
+
+
+def _plain(g, e, atol):
+    """The definition, one full-size array per quantity."""
+    a = np.broadcast_to(atol, np.broadcast_shapes(g.shape, np.shape(atol)))
+    k = g.shape[0]
+    with np.errstate(all="ignore"):
+        diff = np.abs(g - e)
+        same = (g == e) | (np.isnan(g) & np.isnan(e))
+        fin = np.isfinite(g) & np.isfinite(e)
+        bad = ~same & (~fin | (diff > a))
+        ratio = np.where(fin, diff / a, np.where(same, 0.0, np.inf))
+        absolute = np.where(fin, diff, np.where(same, 0.0, np.inf))
+        rel = np.where(fin & (np.abs(e) > 0), diff / np.abs(e), np.where(fin, diff, np.inf))
+    per = lambda x, f: f(x.reshape(k, -1), axis=1)  # noqa: E731
+    return bad, per(bad, np.any), per(ratio, np.max), per(absolute, np.max), per(rel, np.max)
+
+
+def test_mismatch_equals_its_plain_definition_with_special_values():
+    rng = np.random.default_rng(11)
+    specials = np.array([0.0, -0.0, np.inf, -np.inf, np.nan, 1.0, 1e-300, 1e300])  # IEEE-754 special and extreme values
+    for trial in range(200):
+        shape = (int(rng.integers(1, 5)),) + tuple(int(n) for n in rng.integers(1, 4, size=rng.integers(0, 3)))
+        g = rng.standard_normal(shape)
+        e = g + rng.standard_normal(shape) * 10.0 ** rng.uniform(-20, 0)
+        for arr in (g, e):
+            m = rng.random(shape) < 0.3
+            arr[m] = rng.choice(specials, size=int(m.sum()))
+        if trial % 4 == 0:
+            e = np.where(rng.random(shape) < 0.5, g, e)
+        atol = [1e-12, rng.random(shape) * 1e-3, np.zeros(shape[:1] + (1,) * (len(shape) - 1))][trial % 3]
+        m = Mismatch(g, e, atol)
+        want = _plain(g, e, atol)
+        got = (m.bad_elements, m.case_bad, m.case_ratio, m.case_abs, m.case_rel)
+        for x, y in zip(got, want):
+            assert np.array_equal(x, y, equal_nan=True), trial
