@@ -170,9 +170,9 @@ def cell_of(spec: LossSpec, predictions: np.ndarray) -> Cell:
 def single(spec: LossSpec, predictions: np.ndarray, targets: np.ndarray, repeat: int = 1) -> CaseStack:
     """A stack holding one case ``repeat`` times (float64 predictions).
 
-    A search repeats its case as often as the sweep's stacks have cases: the JAX adapter pads a
-    stack to a power-of-two size, so the search then reuses the sweep's compiled functions
-    instead of compiling new ones (a call costs about the same for 1 or 128 small cases).
+    One case is enough for the search to reuse the sweep's compiled functions: the JAX adapter
+    pads every stack of a shape to that shape's one call size (:func:`lossguard._budget.call_size`).
+    ``repeat`` is for checks that need the same case several times in one stack.
     """
     z = np.asarray(predictions, dtype=np.float64)
     y = np.asarray(targets)

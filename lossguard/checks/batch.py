@@ -232,11 +232,11 @@ def _conventions(ctx: Context) -> list[str]:
     return ["examples"] + (["all rows"] if ctx.spec.ignore_label is not None else [])
 
 
-def _judge(ctx: Context, case: tuple, with_halves: bool, repeat: int) -> list[Part]:  # type: ignore[type-arg]
+def _judge(ctx: Context, case: tuple, with_halves: bool) -> list[Part]:  # type: ignore[type-arg]
     """The comparisons for one drawn case X, its partner X' being X with its rows reversed
     (so the company comparison pairs each half with the other half's examples)."""
     z, y = case
-    x, x2 = single(ctx.spec, z, y, repeat), single(ctx.spec, z[::-1], y[::-1], repeat)
+    x, x2 = single(ctx.spec, z, y), single(ctx.spec, z[::-1], y[::-1])
     e = evaluate(ctx, x, x2, ctx.rng("batch search"), with_halves)
     best: list[Part] = []
     for conv in _conventions(ctx):
@@ -266,8 +266,7 @@ def _run(ctx: Context) -> CheckResult:
             chosen, tally = conv, t
     if tally.failed:
         cell = next(c for c, e in evals if any(p.bad.any() for p in compare(ctx, e, chosen)))
-        k = len(ctx.standard_cases(cell))
-        tally.shrink(ctx, cases(ctx.spec, shapes=[cell]), lambda case: _judge(ctx, case, cell == big, k))
+        tally.shrink(ctx, cases(ctx.spec, shapes=[cell]), lambda case: _judge(ctx, case, cell == big))
     weighted = ctx.spec.reference is not None and get_reference(ctx.spec.reference).example_weights is not None
     kept = "examples not ignored" if ctx.spec.ignore_label is not None else "every example"
     counted = {"examples": kept + (f", weighted as {ctx.spec.reference!r} weights them" if weighted else ""),

@@ -123,9 +123,8 @@ def _run(ctx: Context) -> CheckResult:
         if failing is None and any(p.bad.any() for p in parts):
             failing = cell
     if failing is not None:
-        k = len(ctx.standard_cases(failing))
         tally.shrink(ctx, cases(ctx.spec, shapes=[failing]),
-                     lambda case: class_parts(ctx, single(ctx.spec, *case, repeat=k), None))
+                     lambda case: class_parts(ctx, single(ctx.spec, *case), None))
     return tally.result(
         t0, passed="value unchanged and gradient permuted along with the classes",
         failed="the loss treats classes differently", hint=HINT,

@@ -113,9 +113,8 @@ def _run(ctx: Context) -> CheckResult:
         if failing is None and any(p.bad.any() for p in parts):
             failing = cell
     if failing is not None:
-        k = len(ctx.standard_cases(failing))
         tally.shrink(ctx, cases(ctx.spec, shapes=[failing]),
-                     lambda case: nonnegative_parts(ctx, single(ctx.spec, *case, repeat=k))[0])
+                     lambda case: nonnegative_parts(ctx, single(ctx.spec, *case))[0])
     return tally.result(
         t0, passed=f"value >= 0 (within rounding) in {' and '.join(_dtypes(ctx))}",
         failed="the loss went below zero", hint=HINT,

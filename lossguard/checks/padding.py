@@ -136,9 +136,8 @@ def _run(ctx: Context) -> CheckResult:
         if failing is None and any(p.bad.any() for p in parts):
             failing = cell
     if failing is not None:
-        k = len(ctx.standard_cases(failing))
         tally.shrink(ctx, cases(ctx.spec, shapes=[failing]), lambda case: padding_parts(
-            ctx, single(ctx.spec, *case, repeat=k), ctx.rng("padding search"), failing == big))
+            ctx, single(ctx.spec, *case), ctx.rng("padding search"), failing == big))
     return tally.result(
         t0, passed=(f"examples labelled {ctx.spec.ignore_label} change neither value nor real gradients "
                     "and get zero gradient"),
