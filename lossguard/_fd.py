@@ -60,7 +60,7 @@ from .spec import LossSpec
 
 __all__ = ["LEVELS", "CHUNK_BYTES", "Estimate", "Directional", "richardson", "consistent", "directional",
            "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
-           "in_chunks", "branch_points", "complex_step"]
+           "branch_points", "complex_step"]
 
 #: Step levels per direction: h0, h0/2, h0/4, h0/8.
 LEVELS = 4
@@ -216,13 +216,24 @@ def quantise(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS)
     Shapes: ``z`` (K, *S) snapped by :func:`snap`; ``v`` (K, D, *S); ``h0`` (K, D) powers of two.
     Where |h0 v_i| < |z_i| / 4 every point stays within two binades of z_i, where z_i is a
     multiple of 8 ulp(z_i); making h_min v_i a multiple of 8 ulp(z_i) keeps every sum exact.
+    Worked one (case, direction) at a time, in place: at (4096, 1000) a (K, D, *S) temporary
+    is hundreds of megabytes.
     """
-    zz = np.broadcast_to(z[:, None], v.shape)
-    hmin = (h0 * 2.0 ** -(levels - 1)).reshape(h0.shape + (1,) * (v.ndim - 2))
-    grid = 8.0 * np.spacing(np.abs(zz)) / hmin  # a power of two: spacing and h are
-    small = np.abs(h0.reshape(hmin.shape) * v) < np.abs(zz) / 4.0
-    with np.errstate(over="ignore", invalid="ignore"):  # where the grid is tiny, v stays as it is
-        return np.where(small, np.round(v / grid) * grid, v)
+    out = np.array(v, dtype=np.float64, order="C")
+    hmin = h0 * 2.0 ** -(levels - 1)
+    for i in range(out.shape[0]):
+        az = np.abs(z[i])
+        ulp8 = 8.0 * np.spacing(az)
+        quarter = az / 4.0
+        for j in range(out.shape[1]):
+            vij = out[i, j]
+            grid = ulp8 / hmin[i, j]  # a power of two: spacing and h are
+            small = np.abs(h0[i, j] * vij) < quarter
+            with np.errstate(over="ignore", invalid="ignore"):  # where the grid is tiny, v stays as it is
+                q = np.round(vij / grid)
+                q *= grid
+            np.copyto(vij, q, where=small)
+    return out
 
 
 def unit_directions(
@@ -275,40 +286,53 @@ def step_ladder(h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
 
 
 def perturbed(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
-    """Every point z ± h_l v, shape (K, D, 2, J, *S): sign on axis 2 (+ first), level on axis 3."""
+    """Every point z ± h_l v, shape (K, D, 2, J, *S): sign on axis 2 (+ first), level on axis 3.
+
+    Each point is written in place into one C-ordered array, so reshaping it to a stack of
+    points is a view (no full-size temporaries: at (4096, 1000) one point is 32 MB).
+    """
     steps = step_ladder(h0, levels)  # (J, K, D)
-    s = np.moveaxis(steps, 0, -1)[:, :, None, :] * np.array([1.0, -1.0])[None, None, :, None]
-    s = s.reshape(s.shape + (1,) * (v.ndim - 2))
-    out = s * v[:, :, None, None]  # one full-size array, the sum taken in place: z + s·v
-    out += z[:, None, None, None]
+    k, d = v.shape[:2]
+    out = np.empty((k, d, 2, levels) + v.shape[2:])
+    for i in range(k):
+        for j in range(d):
+            for a, sign in enumerate((1.0, -1.0)):
+                for level in range(levels):
+                    o = out[i, j, a, level]
+                    np.multiply(v[i, j], sign * steps[level, i, j], out=o)  # s·v, then z + s·v in place
+                    o += z[i]
     return out
 
 
 def point_stacks(stack: CaseStack, v: np.ndarray, h0: np.ndarray,
-                 levels: int = LEVELS) -> Iterator[tuple[slice, CaseStack]]:
-    """Stacks of every point z ± h_l v (each case's targets repeated), a few cases at a time.
+                 levels: int = LEVELS) -> Iterator[tuple[np.ndarray, CaseStack]]:
+    """Stacks of every point z ± h_l v (each case's targets repeated), a few points at a time.
 
-    Yields ``(cases, points)``: the slice of cases covered and a stack of m·D·2·J points in the
-    order of :func:`perturbed`, so that values reshape to (m, D, 2, J, …). All cases at once
-    unless that would exceed :data:`CHUNK_BYTES`.
+    Yields ``(cases, points)``: the case index of each point and a stack of points, in the order
+    of :func:`perturbed` flattened, so that the values of all yielded stacks concatenated
+    reshape to (K, D, 2, J, …). Every stack fits :data:`CHUNK_BYTES` (all points at once at the
+    menu's shapes) and lives in one buffer that the next stack overwrites: consume each before
+    asking for the next. Reusing the buffer spares the page faults of a fresh array per chunk,
+    which at (4096, 1000) cost more than the loss evaluations themselves.
     """
     shape = stack.cell.pred_shape()
-    per = v.shape[1] * 2 * levels
-    step = max(1, CHUNK_BYTES // (per * max(int(np.prod(shape)), 1) * 8))
-    for a in range(0, len(stack), step):
-        sl = slice(a, min(a + step, len(stack)))
-        pts = perturbed(stack.predictions[sl], v[sl], h0[sl], levels)
-        m = pts.shape[0]
-        yield sl, CaseStack(pts.reshape((m * per,) + shape), np.repeat(stack.targets[sl], per, axis=0), stack.cell)
-
-
-def in_chunks(fn: Callable[[np.ndarray], np.ndarray], count: int, case_bytes: int) -> np.ndarray:
-    """``fn(indices)`` over chunks of a power-of-two number of cases (at least 8) whose
-    predictions fit :data:`CHUNK_BYTES`, concatenated: the compiled shapes repeat."""
-    size = max(8, 2 ** int(np.floor(np.log2(max(CHUNK_BYTES // max(case_bytes, 1), 1)))))
-    if count <= size:
-        return fn(np.arange(count))
-    return np.concatenate([fn(np.arange(a, min(a + size, count))) for a in range(0, count, size)])
+    k, d = v.shape[:2]
+    per = d * 2 * levels
+    total = k * per
+    size = max(1, min(total, CHUNK_BYTES // (max(int(np.prod(shape)), 1) * 8)))
+    buf = np.empty((size,) + shape)
+    steps = step_ladder(h0, levels)  # (J, K, D)
+    z = stack.predictions
+    for a in range(0, total, size):
+        idx = np.arange(a, min(a + size, total))
+        i, rest = np.divmod(idx, per)
+        j, rest = np.divmod(rest, 2 * levels)
+        sign, level = np.divmod(rest, levels)
+        for slot, (ii, jj, ss, ll) in enumerate(zip(i, j, sign, level)):
+            o = buf[slot]
+            np.multiply(v[ii, jj], (1.0 - 2.0 * ss) * steps[ll, ii, jj], out=o)  # s·v, then z + s·v in place
+            o += z[ii]
+        yield i, CaseStack(buf[:len(idx)], stack.targets[i], stack.cell)
 
 
 def branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: str = "soft") -> CaseStack:

@@ -14,7 +14,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, random_stack, shape_menu, target_domain
+from .._budget import case_count
+from ..cases import (CaseStack, Cell, cases_per_cell, concat, ladder_stack, pack_rows, random_stack, shape_menu,
+                     target_domain)
 from ..evaluate import Evaluator
 from ..result import CheckResult
 from ..spec import LossSpec
@@ -145,8 +147,11 @@ class Context:
         return self._stacks[key]
 
     def standard_cases(self, cell: Cell) -> CaseStack:
-        """Random and ladder cases of ``cell`` together."""
+        """Random and ladder cases of ``cell`` together; once a case is large, packed row by row
+        into as few cases as :func:`~lossguard._budget.case_count` allows (one at (4096, 1000):
+        its 4096 rows then take the random and ladder cases in turn)."""
         key = ("standard", cell)
         if key not in self._stacks:
-            self._stacks[key] = concat([self.random_cases(cell), self.ladder_cases(cell)])
+            both = concat([self.random_cases(cell), self.ladder_cases(cell)])
+            self._stacks[key] = pack_rows(both, case_count(len(both), cell.elements(), least=1))
         return self._stacks[key]

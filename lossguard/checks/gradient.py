@@ -77,11 +77,8 @@ DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
 
 def _point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray, out: tuple[int, ...]) -> np.ndarray:
     """float64 loss values at every z ± h_l v: (K, D, 2, J, *out)."""
-    parts = []
-    for _, pts in _fd.point_stacks(stack, v, h0):
-        vals = ev.values(pts, "float64")  # point_stacks bounds the memory; the adapter its calls
-        parts.append(vals.reshape((-1,) + v.shape[1:2] + (2, _fd.LEVELS) + out))
-    return np.concatenate(parts)
+    parts = [ev.values(pts, "float64") for _, pts in _fd.point_stacks(stack, v, h0)]  # each chunk used at once
+    return np.concatenate(parts).reshape((-1,) + v.shape[1:2] + (2, _fd.LEVELS) + out)
 
 
 @dataclass
@@ -115,13 +112,26 @@ def _sum_out(a: np.ndarray, lead: int) -> np.ndarray:
     return a.reshape(a.shape[:lead] + (-1,)).sum(axis=-1)
 
 
+def _dots(g: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """g·v per (case, direction): (K, *S) and (K, D, *S) → (K, D), a matrix-vector product per
+    case (no (K, D, *S) temporary; the summation order is BLAS's, which the allowance covers)."""
+    k, d = v.shape[:2]
+    return np.stack([v[i].reshape(d, -1) @ g[i].reshape(-1) for i in range(k)])
+
+
 def _slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale: np.ndarray, n: int) -> np.ndarray:
     """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3)."""
     k, d = v.shape[:2]
-    gmax = np.nanmax(np.where(np.isfinite(g), np.abs(g), 0.0).reshape(k, -1), axis=1)
+    ag = np.abs(g.reshape(k, -1))
+    gmax = np.where(np.isfinite(ag), ag, 0.0).max(axis=1)
     elem = gamma(n, "float64") * (1.0 + scale) * (gmax + grad_scale)  # normwise bound on each g_i
-    l1 = np.abs(v).reshape(k, d, -1).sum(axis=2)
-    dot = gamma(v[0, 0].size, "float64") * np.abs(g[:, None] * v).reshape(k, d, -1).sum(axis=2)
+    av = np.abs(v.reshape(k, d, -1))
+    l1 = av.sum(axis=2)
+    # Σ_i |g_i v_i| as one matrix-vector product per case (no (K, D, *S) temporary); a
+    # non-finite g_i makes it inf or nan, as the element-wise sum did
+    with np.errstate(invalid="ignore"):
+        absdot = np.stack([av[i] @ ag[i] for i in range(k)])
+    dot = gamma(v[0, 0].size, "float64") * absdot
     return elem[:, None] * l1 + dot
 
 
@@ -223,7 +233,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True) 
 
     # reverse mode (or the declared grad for numpy losses) against finite differences
     with np.errstate(invalid="ignore"):  # inf · 0 where the true gradient is infinite: not judged
-        slope = np.sum((g[:, None] * v).reshape(k, d, -1), axis=2)
+        slope = _dots(g, v)
         a_dot = _slope_allowance(g, v, scale, big_g * cmax, n)
     f0b = np.broadcast_to(f0s["c"][:, None], (k, d))
     taylor = taylor_orders(f0b, np.moveaxis(phis["c"][:, :, 0], -1, 0), steps, slope,
@@ -276,7 +286,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True) 
         if gu is not None:
             tally.oracles.add("declared grad")
             with np.errstate(invalid="ignore"):
-                su = np.sum((gu[:, None] * v).reshape(k, d, -1), axis=2)
+                su = _dots(gu, v)
             bad |= _directional_pair(ctx, tally, stack, "declared grad vs finite differences", su, fds["1"],
                                      _slope_allowance(gu, v, scale, big_g, n), labels, None)[0]
 
@@ -367,7 +377,11 @@ def _run(ctx: Context) -> CheckResult:
         return CheckResult(name="gradient", verdict="skip",
                            summary=("no gradient oracle: the loss is not JAX-traceable and declares no "
                                     "grad; declare grad=... to have it checked"))
-    return check_stacks(ctx, [concat([ctx.standard_cases(cell), special_cases(ctx, cell)]) for cell in ctx.cells])
+    stacks = []
+    for cell in ctx.cells:  # at large shapes the special points share the standard cases' rows
+        both = concat([ctx.standard_cases(cell), special_cases(ctx, cell)])
+        stacks.append(pack_rows(both, case_count(len(both), cell.elements(), least=1)))
+    return check_stacks(ctx, stacks)
 
 
 def special_cases(ctx: Context, cell: Cell) -> CaseStack:

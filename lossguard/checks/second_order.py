@@ -59,14 +59,10 @@ __all__ = ["CHECK"]
 
 def _point_grads(ctx: Context, stack: CaseStack, v: np.ndarray, h0: np.ndarray, c: np.ndarray) -> np.ndarray:
     """Gradients of ⟨c, L⟩ at every z ± h_l v: (K, D, 2, J, *S)."""
-    ev, per = ctx.evaluator, v.shape[1] * 2 * _fd.LEVELS
-    parts = []
-    for cases, pts in _fd.point_stacks(stack, v, h0):
-        cot = np.repeat(c[cases], per, axis=0)
-        g = _fd.in_chunks(lambda idx: ev.value_and_grad(pts.take(idx), "float64", cotangent=cot[idx])[1],
-                          len(pts), pts.predictions[0].nbytes)
-        parts.append(g.reshape((-1, v.shape[1], 2, _fd.LEVELS) + stack.cell.pred_shape()))
-    return np.concatenate(parts)
+    ev = ctx.evaluator
+    parts = [ev.value_and_grad(pts, "float64", cotangent=c[cases])[1]  # each chunk used at once
+             for cases, pts in _fd.point_stacks(stack, v, h0)]
+    return np.concatenate(parts).reshape((-1, v.shape[1], 2, _fd.LEVELS) + stack.cell.pred_shape())
 
 
 def _probe(ctx: Context, stack: CaseStack, found: dict) -> None:
