@@ -60,7 +60,7 @@ from .spec import LossSpec
 
 __all__ = ["LEVELS", "CHUNK_BYTES", "Estimate", "Directional", "richardson", "consistent", "directional",
            "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
-           "branch_points", "complex_step"]
+           "branch_points", "packed_branch_points", "complex_step"]
 
 #: Step levels per direction: h0, h0/2, h0/4, h0/8.
 LEVELS = 4
@@ -69,9 +69,12 @@ H0_LOGITS = 2.0 ** -5
 #: Logit values where stable formulas commonly switch branches (common practice).
 THRESHOLDS = (0.0, 1.0, -1.0, 15.0, -15.0, 20.0, -20.0, 30.0, -30.0)
 #: Largest predictions array (bytes) built or sent to the evaluator at once.
-CHUNK_BYTES = 256 * 2**20
+CHUNK_BYTES = 64 * 2**20
 #: Directions with at most this many coordinates are replaced by the coordinate axes.
 FULL_JACOBIAN_MAX = 12
+#: Dense directions with more coordinates than this (2^16; the menu's shapes have at most a few
+#: thousand) are drawn uniform on a cube instead of Gaussian.
+CUBE_DIRECTIONS_ABOVE = 2**16
 
 
 @dataclass
@@ -221,18 +224,24 @@ def quantise(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS)
     """
     out = np.array(v, dtype=np.float64, order="C")
     hmin = h0 * 2.0 ** -(levels - 1)
+    step, grid = np.empty(out.shape[2:]), np.empty(out.shape[2:])  # scratch reused for every direction
+    small = np.empty(out.shape[2:], bool)
     for i in range(out.shape[0]):
-        az = np.abs(z[i])
-        ulp8 = 8.0 * np.spacing(az)
-        quarter = az / 4.0
+        quarter = np.abs(z[i])
+        ulp8 = np.spacing(quarter)
+        ulp8 *= 8.0
+        quarter /= 4.0
         for j in range(out.shape[1]):
             vij = out[i, j]
-            grid = ulp8 / hmin[i, j]  # a power of two: spacing and h are
-            small = np.abs(h0[i, j] * vij) < quarter
+            np.multiply(vij, h0[i, j], out=step)
+            np.abs(step, out=step)
+            np.less(step, quarter, out=small)  # |h0 v_i| < |z_i| / 4
+            np.divide(ulp8, hmin[i, j], out=grid)  # a power of two: spacing and h are
             with np.errstate(over="ignore", invalid="ignore"):  # where the grid is tiny, v stays as it is
-                q = np.round(vij / grid)
-                q *= grid
-            np.copyto(vij, q, where=small)
+                np.divide(vij, grid, out=step)
+                np.round(step, out=step)
+                step *= grid
+            np.copyto(vij, step, where=small)
     return out
 
 
@@ -241,21 +250,37 @@ def unit_directions(
 ) -> tuple[np.ndarray, list[str]]:
     """``count`` directions per case (K, D, *S), unit 2-norm, with a label for each.
 
-    All but the last are dense Gaussian directions; the last is supported on one random row
+    All but the last are dense random directions; the last is supported on one random row
     (axis 0 of the case), which a row-specific error cannot hide from. Cases with at most
     :data:`FULL_JACOBIAN_MAX` coordinates get every coordinate axis instead (the full Jacobian).
+    Dense directions are Gaussian; past :data:`CUBE_DIRECTIONS_ABOVE` coordinates they are
+    uniform on a cube, three times cheaper to draw. Both are continuous and symmetric, so an
+    error vector e ≠ 0 is orthogonal to a drawn direction with probability 0.
     """
     m = int(np.prod(shape))
     if m <= FULL_JACOBIAN_MAX:
         eye = np.eye(m).reshape((m,) + shape)
         labels = [f"direction: coordinate {tuple(int(j) for j in np.unravel_index(i, shape))}" for i in range(m)]
         return np.broadcast_to(eye, (k,) + eye.shape).copy(), labels
-    v = rng.standard_normal((k, count) + shape)
-    rows = rng.integers(0, shape[0], size=k)
-    keep = np.zeros((k,) + shape, bool)
-    keep[np.arange(k), rows] = True
-    v[:, -1] = np.where(keep, v[:, -1], 0.0)
-    v /= np.sqrt(np.sum(v.reshape(k, count, -1) ** 2, axis=2)).reshape((k, count) + (1,) * len(shape))
+    if m <= CUBE_DIRECTIONS_ABOVE:
+        v = rng.standard_normal((k, count) + shape)
+        rows = rng.integers(0, shape[0], size=k)
+        keep = np.zeros((k,) + shape, bool)
+        keep[np.arange(k), rows] = True
+        v[:, -1] = np.where(keep, v[:, -1], 0.0)
+        v /= np.sqrt(np.sum(v.reshape(k, count, -1) ** 2, axis=2)).reshape((k, count) + (1,) * len(shape))
+    else:
+        v = rng.random((k, count) + shape)
+        v -= 0.5  # uniform on [−1/2, 1/2): zero mean, symmetric
+        rows = rng.integers(0, shape[0], size=k)
+        for i in range(k):  # in place, one (case, direction) at a time: no (K, D, *S) temporaries
+            one_row = v[i, -1]
+            kept = one_row[rows[i]].copy()
+            one_row[...] = 0.0
+            one_row[rows[i]] = kept
+            for d in range(count):
+                flat = v[i, d].reshape(-1)
+                flat /= np.sqrt(flat @ flat)
     labels = [f"direction: dense random #{d}" for d in range(count - 1)]
     labels.append("direction: random within one row")
     return v, labels
@@ -362,6 +387,28 @@ def branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: 
     notes = ["special: all zero", "special: tie at the top", "special: label tied", "special: exact zeros",
              "special: branch thresholds", "special: all tied" if cell.c else "special: ±1e-8"]
     return CaseStack(to_inputs(spec, z), y, cell, notes)
+
+
+def packed_branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: str = "soft",
+                         k: int = 6) -> CaseStack:
+    """:func:`branch_points` packed into ``k`` cases in the row order of
+    :func:`lossguard.cases.pack_rows` (row r of case j has the kind (j + r) mod 6), drawing only
+    the rows that are used: at (4096, 1000) one case instead of six drawn and five sixths dropped.
+    Every row of a special case is built on its own, so a row drawn in a shorter case is a row
+    of the same kind. ``branch_points`` itself when ``k`` ≥ 6.
+    """
+    if k >= 6:
+        return branch_points(spec, cell, rng, domain)
+    kinds = ((np.arange(k)[:, None] + np.arange(cell.n)[None, :]) % 6).ravel()
+    pos = np.empty_like(kinds)  # the row each output row takes within the case of its kind
+    for kind in range(6):
+        at = np.flatnonzero(kinds == kind)
+        pos[at] = np.arange(at.size)
+    mini = branch_points(spec, Cell(int(pos.max()) + 1, cell.c, cell.d), rng, domain)
+    preds = mini.predictions[kinds, pos].reshape((k,) + cell.pred_shape())
+    targs = mini.targets[kinds, pos].reshape((k, cell.n) + mini.targets.shape[2:])
+    note = "rows in turn from: " + "; ".join(sorted(set(mini.notes)))
+    return CaseStack(preds, targs, cell, [note] * k)
 
 
 def complex_step(fn: Callable[[np.ndarray], np.ndarray], z: np.ndarray, v: np.ndarray, h: float = 1e-20) -> np.ndarray:

@@ -397,10 +397,10 @@ def mask_non_targets(rng: np.random.Generator, targets: np.ndarray, n_classes: i
         eligible = np.arange(n_classes)[None, :] != lab[:, None]
     else:
         eligible = t == 0
-    mask = np.zeros(eligible.shape, bool)
-    for i in range(eligible.shape[0]):
-        cls = np.flatnonzero(eligible[i])
-        if cls.size:
-            k = int(rng.integers(1, cls.size + 1))
-            mask[i, rng.choice(cls, size=k, replace=False)] = True
-    return mask
+    count = eligible.sum(axis=1)
+    # k ~ uniform on 1..count per row, then the k eligible classes with the smallest uniform keys:
+    # a uniform random subset of size k (one vectorised draw for all rows, no loop over N)
+    k = np.floor(rng.random(count.shape) * count).astype(np.int64) + 1
+    keys = np.where(eligible, rng.random(eligible.shape), np.inf)
+    kth = np.take_along_axis(np.sort(keys, axis=1), (k - 1)[:, None], axis=1)  # the k-th smallest key
+    return eligible & (keys <= kth)  # keys are distinct doubles, so exactly k per row

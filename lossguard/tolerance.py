@@ -100,9 +100,10 @@ def rounding_allowance(
     k = ref.shape[0] if ref.ndim else 1
     s = np.broadcast_to(s, (k,)) if s.ndim <= 1 else s
     if normwise:
-        flat = np.abs(ref.reshape(k, -1)) if ref.ndim else np.abs(ref).reshape(1, 1)
-        with np.errstate(invalid="ignore"):
-            norm = np.nanmax(np.where(np.isfinite(flat), flat, 0.0), axis=1)
+        flat = ref.reshape(k, -1) if ref.ndim else ref.reshape(1, 1)
+        fin = np.isfinite(flat)
+        # ‖g*‖∞ over the finite entries (0 if none) as max(max g, −min g): no |g| temporary
+        norm = np.maximum(np.max(flat, axis=1, where=fin, initial=0.0), -np.min(flat, axis=1, where=fin, initial=0.0))
         atol = g * (1.0 + s) * (norm + np.broadcast_to(np.asarray(grad_scale, dtype=np.float64), (k,)))
         atol = atol.reshape((k,) + (1,) * max(ref.ndim - 1, 0))
         rule = f"{both_sides}·γ_n·(1 + max|z|)·(‖g*‖∞ + G), n=16+2C+N, u={unit_roundoff(dtype):.2g}"

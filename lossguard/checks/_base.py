@@ -147,11 +147,14 @@ class Context:
         return self._stacks[key]
 
     def standard_cases(self, cell: Cell) -> CaseStack:
-        """Random and ladder cases of ``cell`` together; once a case is large, packed row by row
-        into as few cases as :func:`~lossguard._budget.case_count` allows (one at (4096, 1000):
-        its 4096 rows then take the random and ladder cases in turn)."""
+        """Random and ladder cases of ``cell`` together. Once a case is large the random cases
+        are packed row by row into as few cases as :func:`~lossguard._budget.case_count` allows
+        (one at (4096, 1000)); the ladder stays in cases of its own. Allowances scale with a
+        case's largest logit, so a ladder row at |z| = 1e4 in a random case would widen the
+        allowance of every random row beside it about a thousandfold."""
         key = ("standard", cell)
         if key not in self._stacks:
-            both = concat([self.random_cases(cell), self.ladder_cases(cell)])
-            self._stacks[key] = pack_rows(both, case_count(len(both), cell.elements(), least=1))
+            rand = self.random_cases(cell)
+            rand = pack_rows(rand, case_count(len(rand), cell.elements(), least=1))
+            self._stacks[key] = concat([rand, self.ladder_cases(cell)])
         return self._stacks[key]

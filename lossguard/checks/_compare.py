@@ -7,6 +7,7 @@ from typing import Any
 
 import numpy as np
 
+from .._budget import large_case
 from ..cases import CaseStack
 from ..result import Example
 from ..spec import LossSpec
@@ -33,6 +34,43 @@ def replay(spec: LossSpec, z: np.ndarray, y: np.ndarray, dtype: str = "float64")
     )
 
 
+def _compare(g: np.ndarray, e: np.ndarray, a: np.ndarray,
+             k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(bad elements, per-case error/allowance, abs error, rel error) of :class:`Mismatch`."""
+    # few full-size temporaries: at (4096, 1000) logits each one costs milliseconds
+    with np.errstate(all="ignore"):
+        diff = np.abs(g - e)
+        finite = np.isfinite(g)
+        finite &= np.isfinite(e)
+        odd = ~finite  # non-finite somewhere: agreement only if the same special value
+        any_odd = bool(odd.any())  # usually not: then the special-value bookkeeping is skipped
+        bad = diff > a
+        if any_odd:
+            same_special = g == e
+            same_special |= np.isnan(g) & np.isnan(e)
+            bad |= odd
+            bad &= ~same_special
+            zero_odd = odd & same_special
+        scratch = np.divide(diff, a)  # error over allowance
+        if any_odd:
+            scratch[odd] = np.inf
+            scratch[zero_odd] = 0.0
+        ratio = scratch.reshape(k, -1).max(axis=1)
+        np.copyto(scratch, diff)  # absolute error
+        if any_odd:
+            scratch[odd] = np.inf
+            scratch[zero_odd] = 0.0
+        ab = scratch.reshape(k, -1).max(axis=1)
+        np.abs(e, out=scratch)  # relative error: |g − e| / |e|, or |g − e| where e = 0
+        pos = scratch > 0
+        np.divide(diff, scratch, out=scratch, where=pos)
+        np.copyto(scratch, diff, where=~pos)
+        if any_odd:
+            scratch[odd] = np.inf
+        rel = scratch.reshape(k, -1).max(axis=1)
+    return bad, ratio, ab, rel
+
+
 class Mismatch:
     """Per-case comparison of ``got`` against ``expected`` with absolute allowance ``atol``.
 
@@ -47,35 +85,17 @@ class Mismatch:
         a = np.broadcast_to(np.asarray(atol, dtype=np.float64), np.broadcast_shapes(g.shape, np.shape(atol)))
         k = g.shape[0] if g.ndim else 1
         g, e = np.broadcast_arrays(g, e)
-        # few full-size temporaries: at (4096, 1000) logits each one costs tens of milliseconds
-        with np.errstate(all="ignore"):
-            diff = np.abs(g - e)
-            same_special = g == e
-            same_special |= np.isnan(g) & np.isnan(e)
-            finite = np.isfinite(g)
-            finite &= np.isfinite(e)
-            odd = ~finite  # non-finite somewhere: agreement only if the same special value
-            bad = diff > a
-            bad |= odd
-            bad &= ~same_special
-            zero_odd = odd & same_special
-            scratch = np.divide(diff, a)  # error over allowance
-            scratch[odd] = np.inf
-            scratch[zero_odd] = 0.0
-            self.case_ratio = scratch.reshape(k, -1).max(axis=1)
-            np.copyto(scratch, diff)  # absolute error
-            scratch[odd] = np.inf
-            scratch[zero_odd] = 0.0
-            self.case_abs = scratch.reshape(k, -1).max(axis=1)
-            np.abs(e, out=scratch)  # relative error: |g − e| / |e|, or |g − e| where e = 0
-            pos = scratch > 0
-            np.divide(diff, scratch, out=scratch, where=pos)
-            np.copyto(scratch, diff, where=~pos)
-            scratch[odd] = np.inf
-            self.case_rel = scratch.reshape(k, -1).max(axis=1)
         self.got, self.expected, self.atol = g, e, a
-        self.bad_elements = bad
-        self.case_bad = bad.reshape(k, -1).any(axis=1)
+        if k > 1 and g.ndim > 1 and large_case(g[0].size):  # one case at a time (see large_case)
+            self.bad_elements = np.empty(g.shape, bool)
+            self.case_ratio, self.case_abs, self.case_rel = np.empty(k), np.empty(k), np.empty(k)
+            for i in range(k):
+                bad, ratio, ab, rel = _compare(g[i:i + 1], e[i:i + 1], np.broadcast_to(a, g.shape)[i:i + 1], 1)
+                self.bad_elements[i] = bad[0]
+                self.case_ratio[i], self.case_abs[i], self.case_rel[i] = ratio[0], ab[0], rel[0]
+        else:
+            self.bad_elements, self.case_ratio, self.case_abs, self.case_rel = _compare(g, e, a, k)
+        self.case_bad = self.bad_elements.reshape(k, -1).any(axis=1)
 
     @property
     def failed(self) -> int:

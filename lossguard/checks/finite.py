@@ -150,14 +150,15 @@ def reference_rows(ctx: Context, predictions: np.ndarray, targets: np.ndarray, *
     return ell, g, w
 
 
-def reference_batch(ctx: Context, predictions: np.ndarray, targets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def reference_batch(ctx: Context, predictions: np.ndarray, targets: np.ndarray, *, grad: bool = True
+                    ) -> tuple[np.ndarray, np.ndarray | None]:
     """The declared reference's float64 (values, gradients) on a whole stack in one numpy call.
 
     The same numbers as :func:`lossguard.checks.reference.reference_stack_values` (per example
     ℓ_i and ∂ℓ_i/∂z_i with weights w_i, :func:`reference_rows`, reduced per case as in
     :mod:`lossguard.references._base`), without a Python loop over the K cases.
     """
-    return _reduce(ctx, predictions.shape, targets.shape, *reference_rows(ctx, predictions, targets))
+    return _reduce(ctx, predictions.shape, targets.shape, *reference_rows(ctx, predictions, targets, grad=grad))
 
 
 def _reduce(ctx: Context, pred_shape: tuple[int, ...], targ_shape: tuple[int, ...], ell: np.ndarray,

@@ -59,8 +59,8 @@ import numpy as np
 
 from .. import _fd
 from .._taylor import TaylorResult, taylor_along, taylor_orders
-from .._budget import case_count
-from ..cases import CaseStack, Cell, concat, pack_rows
+from .._budget import case_count, one_case_per_call
+from ..cases import CaseStack, Cell, concat
 from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
 from ..evaluate import Evaluator, NoGradient
@@ -125,12 +125,14 @@ def _slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale
     ag = np.abs(g.reshape(k, -1))
     gmax = np.where(np.isfinite(ag), ag, 0.0).max(axis=1)
     elem = gamma(n, "float64") * (1.0 + scale) * (gmax + grad_scale)  # normwise bound on each g_i
-    av = np.abs(v.reshape(k, d, -1))
-    l1 = av.sum(axis=2)
-    # Σ_i |g_i v_i| as one matrix-vector product per case (no (K, D, *S) temporary); a
-    # non-finite g_i makes it inf or nan, as the element-wise sum did
-    with np.errstate(invalid="ignore"):
-        absdot = np.stack([av[i] @ ag[i] for i in range(k)])
+    l1, absdot = np.empty((k, d)), np.empty((k, d))
+    av = np.empty(ag.shape[1])
+    for i in range(k):  # one direction at a time: no (K, D, *S) temporary
+        for j in range(d):
+            np.abs(v[i, j].reshape(-1), out=av)
+            l1[i, j] = av.sum()
+            with np.errstate(invalid="ignore"):  # a non-finite g_i makes Σ|g_i v_i| inf or nan
+                absdot[i, j] = av @ ag[i]
     dot = gamma(v[0, 0].size, "float64") * absdot
     return elem[:, None] * l1 + dot
 
@@ -180,9 +182,9 @@ def _directional_pair(ctx: Context, tally: _Tally, stack: CaseStack, what: str, 
     return bad.any(axis=1), bad
 
 
-def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True) -> None:
+def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, tag: str = "") -> None:
     spec, ev = ctx.spec, ctx.evaluator
-    rng = ctx.rng(f"gradient {stack.cell}")
+    rng = ctx.rng(f"gradient {stack.cell}{tag}")
     stack = stack.with_predictions(_fd.snap(stack.predictions))
     z, y, cell = stack.predictions, stack.targets, stack.cell
     k, shape = len(stack), cell.pred_shape()
@@ -303,17 +305,17 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True) 
         bad |= m.case_bad
 
     if ev.output == "per_example":
-        bad |= _row_leaks(ctx, tally, stack, out, scale, big_g, n)
+        bad |= _row_leaks(ctx, tally, stack, out, scale, big_g, n, tag)
     if ev.has_autodiff and stack.cell in ctx.cells_for("float32"):
         bad |= _float32(ctx, tally, stack, c, scale, big_g * cmax, n, ~bad)
     tally.bad += int(bad.sum())
 
 
 def _row_leaks(ctx: Context, tally: _Tally, stack: CaseStack, out: tuple[int, ...], scale: np.ndarray,
-               big_g: np.ndarray, n: int) -> np.ndarray:
+               big_g: np.ndarray, n: int, tag: str = "") -> np.ndarray:
     """VJP with a one-hot cotangent: example i's loss must not reach other rows."""
     ev, k = ctx.evaluator, len(stack)
-    rng = ctx.rng(f"gradient rows {stack.cell}")
+    rng = ctx.rng(f"gradient rows {stack.cell}{tag}")
     pick = rng.integers(0, int(np.prod(out)), size=k)
     cot = np.zeros((k, int(np.prod(out))))
     cot[np.arange(k), pick] = 1.0
@@ -377,18 +379,16 @@ def _run(ctx: Context) -> CheckResult:
         return CheckResult(name="gradient", verdict="skip",
                            summary=("no gradient oracle: the loss is not JAX-traceable and declares no "
                                     "grad; declare grad=... to have it checked"))
-    stacks = []
-    for cell in ctx.cells:  # at large shapes the special points share the standard cases' rows
-        both = concat([ctx.standard_cases(cell), special_cases(ctx, cell)])
-        stacks.append(pack_rows(both, case_count(len(both), cell.elements(), least=1)))
-    return check_stacks(ctx, stacks)
+    # the special points stay in cases of their own: packed with random rows, their larger
+    # logits would widen the random rows' allowance (it scales with a case's largest logit)
+    return check_stacks(ctx, [concat([ctx.standard_cases(cell), special_cases(ctx, cell)]) for cell in ctx.cells])
 
 
 def special_cases(ctx: Context, cell: Cell) -> CaseStack:
     """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`);
-    at large shapes packed row by row into fewer cases (:func:`lossguard.cases.pack_rows`)."""
-    stack = _fd.branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain)
-    return pack_rows(stack, case_count(len(stack), cell.elements(), least=1))
+    at large shapes packed row by row into fewer cases (:func:`lossguard._fd.packed_branch_points`)."""
+    k = case_count(6, cell.elements(), least=1)
+    return _fd.packed_branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain, k)
 
 
 def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
@@ -399,7 +399,13 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     calls0 = ev.calls
     tally = _Tally()
     for i, stack in enumerate(stacks):
-        _probe(ctx, stack, tally, forward=i == len(stacks) - 1)  # forward mode compiles: one stack
+        last = i == len(stacks) - 1  # forward mode compiles: one stack (its shape)
+        if one_case_per_call(stack.cell):
+            # large cases one at a time, each with its own draws: every array stays one case big
+            for j in range(len(stack)):
+                _probe(ctx, stack.take([j]), tally, forward=last, tag=f" case {j}" if j else "")
+        else:
+            _probe(ctx, stack, tally, forward=last)
     worst = [e for _, e in sorted(tally.worst, key=lambda e: -(e[0] if not np.isnan(e[0]) else np.inf))][:3]
     order = float(np.median(tally.orders)) if tally.orders else float("nan")
     oracles = ", ".join(sorted(tally.oracles))

@@ -63,11 +63,11 @@ def _row_norms(g: np.ndarray, targets: np.ndarray, spec_kind: str) -> np.ndarray
     The label's coordinate, not the row's largest entry: a bystander class's tiny gradient must
     not keep a row "alive" whose label and competitor get none.
     """
-    a = np.abs(g)
     if spec_kind == "binary":
-        return a.reshape(a.shape[0], -1)
+        return np.abs(g).reshape(g.shape[0], -1)
     labels = targets if spec_kind == "categorical" else np.argmax(targets, axis=-1)
-    return np.take_along_axis(a, labels[..., None].astype(np.int64), axis=-1)[..., 0]
+    # gather the label's entry first, then |·|: no full-size temporary
+    return np.abs(np.take_along_axis(g, labels[..., None].astype(np.int64), axis=-1)[..., 0])
 
 
 def _run(ctx: Context) -> CheckResult:

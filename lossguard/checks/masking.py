@@ -89,7 +89,7 @@ def _true_finite(ctx: Context, stack: CaseStack, mask: np.ndarray) -> tuple[np.n
     """(true value finite per case, its float64 estimate, which oracle)."""
     if ctx.spec.reference is not None:
         with np.errstate(all="ignore"):
-            v, _ = reference_batch(ctx, stack.predictions, stack.targets)
+            v, _ = reference_batch(ctx, stack.predictions, stack.targets, grad=False)
         return per_case_finite(v, len(stack)), v, f"reference {ctx.spec.reference!r} in float64"
     limit = "the limit z_c → −inf of the loss's own float64 value"
     return _limit_oracle(ctx, stack, mask), np.zeros(len(stack)), limit

@@ -27,7 +27,8 @@ def case_scale(ctx: Context, predictions: np.ndarray) -> np.ndarray:
     k = predictions.shape[0]
     if ctx.spec.inputs == "probabilities":
         return np.ones(k)
-    return np.max(np.abs(predictions.reshape(k, -1)), axis=1)
+    flat = predictions.reshape(k, -1)
+    return np.maximum(flat.max(axis=1), -flat.min(axis=1))  # max |z| without a |z| temporary
 
 
 def gradient_term_scale(ctx: Context, targets: np.ndarray) -> np.ndarray:
