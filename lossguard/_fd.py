@@ -55,8 +55,8 @@ from functools import lru_cache
 
 import numpy as np
 
-from .cases import CaseStack, Cell, draw_targets, to_inputs
-from .spec import LossSpec
+from ._branch_points import THRESHOLDS, branch_points, packed_branch_points
+from .cases import CaseStack
 
 __all__ = ["LEVELS", "CHUNK_BYTES", "Estimate", "Directional", "richardson", "consistent", "directional",
            "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
@@ -66,8 +66,6 @@ __all__ = ["LEVELS", "CHUNK_BYTES", "Estimate", "Directional", "richardson", "co
 LEVELS = 4
 #: First step for logits, a power of two (losses in logits curve on a scale of about one logit).
 H0_LOGITS = 2.0 ** -5
-#: Logit values where stable formulas commonly switch branches (common practice).
-THRESHOLDS = (0.0, 1.0, -1.0, 15.0, -15.0, 20.0, -20.0, 30.0, -30.0)
 #: Largest predictions array (bytes) built or sent to the evaluator at once.
 CHUNK_BYTES = 64 * 2**20
 #: Directions with at most this many coordinates are replaced by the coordinate axes.
@@ -358,57 +356,6 @@ def point_stacks(stack: CaseStack, v: np.ndarray, h0: np.ndarray,
             np.multiply(v[ii, jj], (1.0 - 2.0 * ss) * steps[ll, ii, jj], out=o)  # s·v, then z + s·v in place
             o += z[ii]
         yield i, CaseStack(buf[:len(idx)], stack.targets[i], stack.cell)
-
-
-def branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: str = "soft") -> CaseStack:
-    """Six cases of ``cell`` where implementations branch: all-zero logits, two classes tied at
-    the top, the labelled class tied with another, exact zeros among random logits, logits on
-    the :data:`THRESHOLDS`, every class tied (binary: ±1e-300 and ±1e-8 around the sign
-    switch) — in the declared input space."""
-    shape, k = cell.pred_shape(), 6
-    y = draw_targets(spec, cell, rng, k, domain=domain)
-    z = rng.standard_normal((k,) + shape)
-    z[0] = 0.0
-    if cell.c is not None:
-        lab = y if spec.kind == "categorical" else np.argmax(y, axis=-1)
-        lab = np.where((lab >= 0) & (lab < cell.c), lab, 0)
-        top = z[1].max(axis=-1) + 1.0
-        z[1, :, 0], z[1, :, 1] = top, top  # two classes tied at the maximum
-        other = (lab[2] + 1) % cell.c
-        rows = np.arange(cell.n)
-        z[2, rows, other] = z[2, rows, lab[2]]  # the labelled class tied with another
-        z[5] = 3.0  # every class tied
-    else:
-        z[1] = np.where(rng.random(shape) < 0.5, 0.0, z[1])
-        z[2] = 1e-300 * np.sign(z[2])  # either side of the sign switch
-        z[5] = np.where(rng.random(shape) < 0.5, 1e-8, -1e-8)
-    z[3] = np.where(rng.random(shape) < 0.3, 0.0, z[3])  # exact zeros among random values
-    z[4] = rng.choice(THRESHOLDS, size=shape)
-    notes = ["special: all zero", "special: tie at the top", "special: label tied", "special: exact zeros",
-             "special: branch thresholds", "special: all tied" if cell.c else "special: ±1e-8"]
-    return CaseStack(to_inputs(spec, z), y, cell, notes)
-
-
-def packed_branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: str = "soft",
-                         k: int = 6) -> CaseStack:
-    """:func:`branch_points` packed into ``k`` cases in the row order of
-    :func:`lossguard.cases.pack_rows` (row r of case j has the kind (j + r) mod 6), drawing only
-    the rows that are used: at (4096, 1000) one case instead of six drawn and five sixths dropped.
-    Every row of a special case is built on its own, so a row drawn in a shorter case is a row
-    of the same kind. ``branch_points`` itself when ``k`` ≥ 6.
-    """
-    if k >= 6:
-        return branch_points(spec, cell, rng, domain)
-    kinds = ((np.arange(k)[:, None] + np.arange(cell.n)[None, :]) % 6).ravel()
-    pos = np.empty_like(kinds)  # the row each output row takes within the case of its kind
-    for kind in range(6):
-        at = np.flatnonzero(kinds == kind)
-        pos[at] = np.arange(at.size)
-    mini = branch_points(spec, Cell(int(pos.max()) + 1, cell.c, cell.d), rng, domain)
-    preds = mini.predictions[kinds, pos].reshape((k,) + cell.pred_shape())
-    targs = mini.targets[kinds, pos].reshape((k, cell.n) + mini.targets.shape[2:])
-    note = "rows in turn from: " + "; ".join(sorted(set(mini.notes)))
-    return CaseStack(preds, targs, cell, [note] * k)
 
 
 def complex_step(fn: Callable[[np.ndarray], np.ndarray], z: np.ndarray, v: np.ndarray, h: float = 1e-20) -> np.ndarray:

@@ -53,21 +53,20 @@ References:
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
-
 import numpy as np
 
 from .. import _fd
-from .._taylor import TaylorResult, taylor_along, taylor_orders
+from .._taylor import taylor_along, taylor_orders
 from .._budget import case_count, one_case_per_call
 from ..cases import CaseStack, Cell, concat
 from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
-from ..evaluate import Evaluator, NoGradient
-from ..result import CheckResult, Example
+from ..evaluate import NoGradient
+from ..result import CheckResult
 from ..tolerance import gamma, op_count, rounding_allowance
 from ._base import Check, Context
-from ._compare import examples_from, mismatch, replay
+from ._compare import examples_from, mismatch
+from ._gradient_parts import Tally, directional_pair, dots, example, point_values, slope_allowance, sum_out
 from .reference import case_scale, gradient_term_scale, reference_stack_values
 
 __all__ = ["CHECK", "check_stacks", "special_cases", "DIRECTIONS"]
@@ -75,114 +74,7 @@ __all__ = ["CHECK", "check_stacks", "special_cases", "DIRECTIONS"]
 DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
 
 
-def _point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray, out: tuple[int, ...]) -> np.ndarray:
-    """float64 loss values at every z ± h_l v: (K, D, 2, J, *out)."""
-    parts = [ev.values(pts, "float64") for _, pts in _fd.point_stacks(stack, v, h0)]  # each chunk used at once
-    return np.concatenate(parts).reshape((-1,) + v.shape[1:2] + (2, _fd.LEVELS) + out)
-
-
-@dataclass
-class _Tally:
-    """What the cells found, pair by pair."""
-
-    total: int = 0
-    bad: int = 0
-    pairs: dict[str, int] = field(default_factory=dict)
-    worst: list[tuple[float, Example]] = field(default_factory=list)
-    ratio: float = 0.0
-    kinks: int = 0
-    judged: int = 0
-    skipped: int = 0
-    orders: list[float] = field(default_factory=list)
-    fd_tol: list[float] = field(default_factory=list)
-    notes: set[str] = field(default_factory=set)
-    oracles: set[str] = field(default_factory=set)
-    float32_cases: int = 0
-
-    def add(self, pair: str, bad: np.ndarray, ratio: np.ndarray, examples: list[tuple[float, Example]]) -> None:
-        if bad.any():
-            self.pairs[pair] = self.pairs.get(pair, 0) + int(bad.sum())
-        finite = ratio[np.isfinite(ratio)]
-        if finite.size:
-            self.ratio = max(self.ratio, float(finite.max()))
-        self.worst += examples
-
-
-def _sum_out(a: np.ndarray, lead: int) -> np.ndarray:
-    return a.reshape(a.shape[:lead] + (-1,)).sum(axis=-1)
-
-
-def _dots(g: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """g·v per (case, direction): (K, *S) and (K, D, *S) → (K, D), a matrix-vector product per
-    case (no (K, D, *S) temporary; the summation order is BLAS's, which the allowance covers)."""
-    k, d = v.shape[:2]
-    return np.stack([v[i].reshape(d, -1) @ g[i].reshape(-1) for i in range(k)])
-
-
-def _slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale: np.ndarray, n: int) -> np.ndarray:
-    """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3)."""
-    k, d = v.shape[:2]
-    ag = np.abs(g.reshape(k, -1))
-    gmax = np.where(np.isfinite(ag), ag, 0.0).max(axis=1)
-    elem = gamma(n, "float64") * (1.0 + scale) * (gmax + grad_scale)  # normwise bound on each g_i
-    l1, absdot = np.empty((k, d)), np.empty((k, d))
-    av = np.empty(ag.shape[1])
-    for i in range(k):  # one direction at a time: no (K, D, *S) temporary
-        for j in range(d):
-            np.abs(v[i, j].reshape(-1), out=av)
-            l1[i, j] = av.sum()
-            with np.errstate(invalid="ignore"):  # a non-finite g_i makes Σ|g_i v_i| inf or nan
-                absdot[i, j] = av @ ag[i]
-    dot = gamma(v[0, 0].size, "float64") * absdot
-    return elem[:, None] * l1 + dot
-
-
-def _example(ctx: Context, stack: CaseStack, k: int, what: str, got: float, expected: object,
-             err: float, tol: float, note: str) -> tuple[float, Example]:
-    ref = float(expected) if isinstance(expected, (float, np.floating)) else float("nan")
-    rel = err / abs(ref) if np.isfinite(ref) and ref != 0 else err
-    ex = Example(what=what, predictions=stack.predictions[k], targets=stack.targets[k], got=got,
-                 expected=expected, abs_err=err, rel_err=rel, allowance=tol,
-                 note="; ".join(s for s in (stack.note(k), note) if s),
-                 replay=replay(ctx.spec, stack.predictions[k], stack.targets[k]))
-    return (err / tol if tol > 0 else np.inf), ex
-
-
-def _directional_pair(ctx: Context, tally: _Tally, stack: CaseStack, what: str, slope: np.ndarray,
-                      fd: _fd.Directional, a_dot: np.ndarray, labels: list[str],
-                      taylor: TaylorResult | None) -> tuple[np.ndarray, np.ndarray]:
-    """Compare an oracle's slopes (K, D) with the finite differences; returns (bad per case, bad (K, D))."""
-    c_est, f_est, b_est = fd.central, fd.forward, fd.backward
-    smooth = fd.smooth
-    tol = fd.allowance() + a_dot
-    with np.errstate(invalid="ignore"):
-        err = np.abs(slope - c_est.value)
-        bad_s = smooth & ~(err <= tol)
-        margin = 2.0 * (f_est.error + b_est.error) + a_dot
-        lo = np.minimum(f_est.value, b_est.value) - margin
-        hi = np.maximum(f_est.value, b_est.value) + margin
-        bad_k = fd.kink & ~((slope >= lo) & (slope <= hi))
-        ratio = np.where(smooth, err / tol, np.where(fd.kink, np.maximum(lo - slope, slope - hi) / margin + 1, 0.0))
-        bad = bad_s | bad_k
-        ratio = np.where(np.isnan(ratio) & bad, np.inf, ratio)
-        gap = np.fmax(lo - slope, slope - hi)  # distance outside the one-sided interval
-    examples = []
-    flat = np.flatnonzero(bad)
-    for k, d in zip(*np.unravel_index(flat[np.argsort(-ratio.reshape(-1)[flat], kind="stable")][:2], bad.shape)):
-        order = taylor.describe((k, d)) if taylor is not None else ""
-        if fd.kink[k, d]:
-            exp: object = f"between {f_est.value[k, d]:.9g} and {b_est.value[k, d]:.9g} (one-sided, a kink)"
-            e_kd = float(gap[k, d]) if np.isfinite(gap[k, d]) else np.inf
-            examples.append(_example(ctx, stack, int(k), f"{what}, {labels[d]}", float(slope[k, d]), exp,
-                                     e_kd, float(margin[k, d]), order))
-        else:
-            examples.append(_example(ctx, stack, int(k), f"{what}, {labels[d]}", float(slope[k, d]),
-                                     float(c_est.value[k, d]), float(err[k, d]), float(tol[k, d]), order))
-    tally.add(what, bad.any(axis=1), ratio.max(axis=1), examples)
-    return bad.any(axis=1), bad
-
-
-def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, tag: str = "") -> None:
+def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "") -> None:
     spec, ev = ctx.spec, ctx.evaluator
     rng = ctx.rng(f"gradient {stack.cell}{tag}")
     stack = stack.with_predictions(_fd.snap(stack.predictions))
@@ -208,7 +100,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
     h0 = _fd.base_steps(z, v, spec.inputs)
     v = _fd.quantise(z, v, h0)
     d = v.shape[1]
-    fv = _point_values(ev, stack, v, h0, out)
+    fv = point_values(ev, stack, v, h0, out)
     cb = c.reshape((k, 1, 1, 1) + out)
     with np.errstate(all="ignore"):
         # fmax.reduce skips nan like nanmax (nan only when every point is nan), without a warning
@@ -218,9 +110,9 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
     steps = _fd.step_ladder(h0)
     fds, noise, f0s, phis = {}, {}, {}, {}
     for name, w in (("c", cb), ("1", np.ones_like(cb))):
-        phis[name] = phi = _sum_out(fv * w, 4)  # ⟨w, L⟩ at every point: (K, D, 2, J)
-        noise[name] = _sum_out(np.abs(w[:, 0, 0, 0]) * atol, 1)
-        f0s[name] = _sum_out(vals * w[:, 0, 0, 0], 1)
+        phis[name] = phi = sum_out(fv * w, 4)  # ⟨w, L⟩ at every point: (K, D, 2, J)
+        noise[name] = sum_out(np.abs(w[:, 0, 0, 0]) * atol, 1)
+        f0s[name] = sum_out(vals * w[:, 0, 0, 0], 1)
         fp, fm = np.moveaxis(phi[:, :, 0], -1, 0), np.moveaxis(phi[:, :, 1], -1, 0)
         f0b = np.broadcast_to(f0s[name][:, None], (k, d))
         fds[name] = _fd.directional(f0b, fp, fm, steps, np.broadcast_to(noise[name][:, None], (k, d)))
@@ -235,22 +127,22 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
 
     # reverse mode (or the declared grad for numpy losses) against finite differences
     with np.errstate(invalid="ignore"):  # inf · 0 where the true gradient is infinite: not judged
-        slope = _dots(g, v)
-        a_dot = _slope_allowance(g, v, scale, big_g * cmax, n)
+        slope = dots(g, v)
+        a_dot = slope_allowance(g, v, scale, big_g * cmax, n)
     f0b = np.broadcast_to(f0s["c"][:, None], (k, d))
     taylor = taylor_orders(f0b, np.moveaxis(phis["c"][:, :, 0], -1, 0), steps, slope,
                            np.broadcast_to(noise["c"][:, None], (k, d)))
     smooth_orders = taylor.observed[fd.smooth & np.isfinite(taylor.observed)]
     tally.orders += smooth_orders.tolist()
     bad = np.zeros(k, bool)
-    case_bad, kd_bad = _directional_pair(ctx, tally, stack, f"{oracle} vs finite differences", slope, fd,
+    case_bad, kd_bad = directional_pair(ctx, tally, stack, f"{oracle} vs finite differences", slope, fd,
                                          a_dot, labels, taylor)
     bad |= case_bad
     if kd_bad.any():
         kk, dd = np.argwhere(kd_bad)[np.argmax(np.where(kd_bad, np.abs(slope - fd.central.value), -1)[kd_bad])]
         def phi(points: np.ndarray) -> np.ndarray:  # the cell's compiled function: no new compilation
             one = CaseStack(points, np.repeat(y[kk:kk + 1], len(points), axis=0), cell)
-            return _sum_out(ev.values(one, "float64") * c[kk][None], 1)
+            return sum_out(ev.values(one, "float64") * c[kk][None], 1)
 
         t = taylor_along(phi, z[kk], v[kk, dd], float(h0[kk, dd]), float(f0s["c"][kk]), float(slope[kk, dd]),
                          float(noise["c"][kk]))
@@ -264,7 +156,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
     if forward and isinstance(ev.adapter, JaxAdapter):
         try:
             tang = np.stack([ev.jvp(stack, np.ascontiguousarray(v[:, j]), "float64")[1] for j in range(d)], axis=1)
-            fwd = _sum_out(tang * c.reshape((k, 1) + out), 2)
+            fwd = sum_out(tang * c.reshape((k, 1) + out), 2)
             tally.oracles.add("forward mode")
             with np.errstate(invalid="ignore"):
                 err = np.abs(fwd - slope)
@@ -273,7 +165,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
             side = np.where(kd_bad, "finite differences side against reverse mode",
                             np.where(fd.judged, "finite differences side with reverse mode",
                                      "finite differences cannot judge this point"))
-            ex = [_example(ctx, stack, int(i), f"forward mode vs reverse mode, {labels[j]}", float(fwd[i, j]),
+            ex = [example(ctx, stack, int(i), f"forward mode vs reverse mode, {labels[j]}", float(fwd[i, j]),
                            float(slope[i, j]), float(err[i, j]), float(2 * a_dot[i, j]), str(side[i, j]))
                   for i, j in np.argwhere(fb)[:2]]
             tally.add("forward mode vs reverse mode", fb.any(axis=1), fratio, ex)
@@ -288,9 +180,9 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
         if gu is not None:
             tally.oracles.add("declared grad")
             with np.errstate(invalid="ignore"):
-                su = _dots(gu, v)
-            bad |= _directional_pair(ctx, tally, stack, "declared grad vs finite differences", su, fds["1"],
-                                     _slope_allowance(gu, v, scale, big_g, n), labels, None)[0]
+                su = dots(gu, v)
+            bad |= directional_pair(ctx, tally, stack, "declared grad vs finite differences", su, fds["1"],
+                                     slope_allowance(gu, v, scale, big_g, n), labels, None)[0]
 
     # the registry's hand-derived gradient
     if spec.reference is not None:
@@ -311,7 +203,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: _Tally, forward: bool = True, 
     tally.bad += int(bad.sum())
 
 
-def _row_leaks(ctx: Context, tally: _Tally, stack: CaseStack, out: tuple[int, ...], scale: np.ndarray,
+def _row_leaks(ctx: Context, tally: Tally, stack: CaseStack, out: tuple[int, ...], scale: np.ndarray,
                big_g: np.ndarray, n: int, tag: str = "") -> np.ndarray:
     """VJP with a one-hot cotangent: example i's loss must not reach other rows."""
     ev, k = ctx.evaluator, len(stack)
@@ -331,14 +223,14 @@ def _row_leaks(ctx: Context, tally: _Tally, stack: CaseStack, out: tuple[int, ..
     ex = []
     for i in np.flatnonzero(bad)[:2]:
         row = np.unravel_index(pick[i], out)
-        ex.append(_example(ctx, stack, int(i), f"VJP with cotangent 1 at output {row}: gradient outside its row",
+        ex.append(example(ctx, stack, int(i), f"VJP with cotangent 1 at output {row}: gradient outside its row",
                            float(leak[i]), 0.0, float(leak[i]), float(tol[i]),
                            "example losses must depend on their own row only"))
     tally.add("rows: example i reaches other rows", bad, leak / tol, ex)
     return bad
 
 
-def _float32(ctx: Context, tally: _Tally, stack: CaseStack, c: np.ndarray, scale: np.ndarray,
+def _float32(ctx: Context, tally: Tally, stack: CaseStack, c: np.ndarray, scale: np.ndarray,
              big_g: np.ndarray, n: int, ok64: np.ndarray) -> np.ndarray:
     """Reverse mode in float32 against float64 on the same float32-rounded cases."""
     ev = ctx.evaluator
@@ -397,7 +289,7 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     t0 = time.perf_counter()
     ev = ctx.evaluator
     calls0 = ev.calls
-    tally = _Tally()
+    tally = Tally()
     for i, stack in enumerate(stacks):
         last = i == len(stacks) - 1  # forward mode compiles: one stack (its shape)
         if one_case_per_call(stack.cell):
