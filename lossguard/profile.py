@@ -48,6 +48,8 @@ from .cases import CaseStack, Cell, concat, ladder_stack, shape_menu
 from .checks._base import Context
 from .checks.finite import ACCUMULATOR, reduced_fits, reference_batch
 from .checks.reference import case_scale, gradient_term_scale
+from ._suggest import bad_value, did_you_mean
+from .errors import SpecError
 from .evaluate import Evaluator, NoGradient
 from .ladders import common_grid, largest_finite, profile_magnitudes, round_down, ulp
 from .spec import LossSpec
@@ -59,8 +61,12 @@ from ._mp_oracle import _MP, mp_reference_stack
 __all__ = ["PROFILE_PATTERNS", "DtypeProfile", "Profile", "profile", "mp_available", "mp_reference_stack"]
 
 PROFILE_PATTERNS = ("right", "wrong", "equal", "huge")
-#: Rows per case (binary: twice as many elements); few, since the oracle runs in mpmath.
+#: Rows per case at the default effort (binary: twice as many elements); few, since the oracle
+#: runs in mpmath.
 PROFILE_ROWS = 4
+#: Rows per case by effort: more rows at each (magnitude, pattern) give the random entries of a
+#: case more chances to meet a bad spot; the mpmath oracle's time grows with them.
+ROWS_BY_EFFORT = {"quick": 2, "default": PROFILE_ROWS, "thorough": 16}
 
 
 @dataclass
@@ -239,6 +245,7 @@ def profile(
     evaluator: Evaluator | None = None,
     target: str | None = None,
     dps: int = 40,
+    effort: str = "default",
 ) -> Profile:
     """Measure value and gradient errors against the oracle over the magnitude grid, per dtype.
 
@@ -249,15 +256,19 @@ def profile(
         evaluator: reuse an evaluator (and its compilations).
         target: how the loss was named (for the report).
         dps: significant digits of the mpmath oracle.
+        effort: rows per case, :data:`ROWS_BY_EFFORT` (quick 2, default 4, thorough 16).
 
     Returns:
         A :class:`Profile`; ``render_profile`` prints it, ``lossguard profile --png`` plots it.
     """
+    if effort not in ROWS_BY_EFFORT:
+        raise SpecError(bad_value("effort", effort, "quick, default or thorough", did_you_mean(str(effort), ROWS_BY_EFFORT)))
     t0 = time.perf_counter()
     dtypes = tuple(d for d in DTYPES if d in dtypes)
     ev = evaluator or Evaluator(spec)
     first = shape_menu(spec, "quick")[0]
-    cell = Cell(PROFILE_ROWS, first.c) if first.c is not None else Cell(2 * PROFILE_ROWS)
+    rows = ROWS_BY_EFFORT[effort]
+    cell = Cell(rows, first.c) if first.c is not None else Cell(2 * rows)
     ctx = Context(spec=spec, evaluator=ev, seed=seed, effort="quick", cells_override=(cell,))
     stack, holders, mags = _cases(ctx, dtypes)
     *oracle, how = _oracle(ctx, stack, dps)

@@ -14,6 +14,7 @@ import pytest
 
 from lossguard import declare
 from lossguard.cli import main
+from lossguard.errors import SpecError
 from lossguard.commands.profile import render_profile
 from lossguard.examples.reef_survey import tile_loss, tile_loss_old
 from lossguard.profile import Profile, profile
@@ -85,3 +86,14 @@ def test_without_mpmath_the_float64_reference_stands_in(monkeypatch: pytest.Monk
     monkeypatch.setattr(engine, "_MP", None)
     prof = profile(declare(tile_loss, kind="categorical", reference="categorical_ce"), dtypes=("float32",))
     assert "mpmath is not installed" in prof.oracle and prof.row("float32").safe_limit > 1e30
+
+
+def test_effort_sets_the_rows_of_each_profiled_case(capsys: pytest.CaptureFixture[str]) -> None:
+    spec = declare(tile_loss, kind="categorical", reference="categorical_ce")
+    quick = profile(spec, dtypes=("float64",), effort="quick")
+    assert quick.shape.startswith("2x") and profile(spec, dtypes=("float64",)).shape.startswith("4x")
+    code = main(["profile", f"{EXAMPLE}:tile_loss", "--kind", "categorical", "--dtype", "float64",
+                 "--effort", "thorough"])
+    assert code == 0 and "16x" in capsys.readouterr().out  # the command passes --effort through
+    with pytest.raises(SpecError, match=r"effort='quik': expected quick, default or thorough; try 'quick'"):
+        profile(spec, effort="quik")

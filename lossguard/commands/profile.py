@@ -40,7 +40,7 @@ def main(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, args.target)
     if args.png:
         _matplotlib()  # fail before the work, not after it
-    prof = profile(spec, seed=args.seed, dtypes=tuple(args.dtype or DTYPES), target=args.target)
+    prof = profile(spec, seed=args.seed, dtypes=tuple(args.dtype or DTYPES), target=args.target, effort=args.effort)
     sys.stdout.write(render_profile(prof))
     if args.png:
         write_png(prof, args.png)
