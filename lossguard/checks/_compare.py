@@ -39,11 +39,16 @@ def _compare(g: np.ndarray, e: np.ndarray, a: np.ndarray,
     """(bad elements, per-case error/allowance, abs error, rel error) of :class:`Mismatch`."""
     # few full-size temporaries: at (4096, 1000) logits each one costs milliseconds
     with np.errstate(all="ignore"):
-        diff = np.abs(g - e)
-        finite = np.isfinite(g)
-        finite &= np.isfinite(e)
-        odd = ~finite  # non-finite somewhere: agreement only if the same special value
-        any_odd = bool(odd.any())  # usually not: then the special-value bookkeeping is skipped
+        diff = np.subtract(g, e)
+        np.abs(diff, out=diff)
+        # |g − e| is finite only where both are (inf or nan in either gives inf or nan): then the
+        # special-value bookkeeping is skipped, which is the usual case
+        any_odd = not bool(np.isfinite(diff).all())
+        if any_odd:
+            finite = np.isfinite(g)
+            finite &= np.isfinite(e)
+            odd = ~finite  # non-finite somewhere: agreement only if the same special value
+            any_odd = bool(odd.any())  # both finite, but their difference overflowed: no special value
         bad = diff > a
         if any_odd:
             same_special = g == e
@@ -56,11 +61,13 @@ def _compare(g: np.ndarray, e: np.ndarray, a: np.ndarray,
             scratch[odd] = np.inf
             scratch[zero_odd] = 0.0
         ratio = scratch.reshape(k, -1).max(axis=1)
-        np.copyto(scratch, diff)  # absolute error
         if any_odd:
+            np.copyto(scratch, diff)  # absolute error
             scratch[odd] = np.inf
             scratch[zero_odd] = 0.0
-        ab = scratch.reshape(k, -1).max(axis=1)
+            ab = scratch.reshape(k, -1).max(axis=1)
+        else:
+            ab = diff.reshape(k, -1).max(axis=1)
         np.abs(e, out=scratch)  # relative error: |g − e| / |e|, or |g − e| where e = 0
         pos = scratch > 0
         np.divide(diff, scratch, out=scratch, where=pos)

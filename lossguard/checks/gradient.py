@@ -273,7 +273,11 @@ def _run(ctx: Context) -> CheckResult:
                                     "grad; declare grad=... to have it checked"))
     # the special points stay in cases of their own: packed with random rows, their larger
     # logits would widen the random rows' allowance (it scales with a case's largest logit)
-    return check_stacks(ctx, [concat([ctx.standard_cases(cell), special_cases(ctx, cell)]) for cell in ctx.cells])
+    stacks: list[CaseStack] = []
+    for cell in ctx.cells:
+        parts = [ctx.standard_cases(cell), special_cases(ctx, cell)]
+        stacks += parts if one_case_per_call(cell) else [concat(parts)]  # large cases are probed one by one
+    return check_stacks(ctx, stacks)
 
 
 def special_cases(ctx: Context, cell: Cell) -> CaseStack:
@@ -290,14 +294,16 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     ev = ctx.evaluator
     calls0 = ev.calls
     tally = Tally()
-    for i, stack in enumerate(stacks):
-        last = i == len(stacks) - 1  # forward mode compiles: one stack (its shape)
+    pieces: dict[Cell, int] = {}
+    for stack in stacks:
+        forward = stack.cell == stacks[-1].cell  # forward mode compiles: the last shape only
         if one_case_per_call(stack.cell):
             # large cases one at a time, each with its own draws: every array stays one case big
             for j in range(len(stack)):
-                _probe(ctx, stack.take([j]), tally, forward=last, tag=f" case {j}" if j else "")
+                m = pieces[stack.cell] = pieces.get(stack.cell, -1) + 1
+                _probe(ctx, stack.take([j]), tally, forward=forward, tag=f" case {m}" if m else "")
         else:
-            _probe(ctx, stack, tally, forward=last)
+            _probe(ctx, stack, tally, forward=forward)
     worst = [e for _, e in sorted(tally.worst, key=lambda e: -(e[0] if not np.isnan(e[0]) else np.inf))][:3]
     order = float(np.median(tally.orders)) if tally.orders else float("nan")
     oracles = ", ".join(sorted(tally.oracles))
