@@ -44,13 +44,13 @@ every failed check with its worst case. Items carry the marker ``lossguard`` (``
 from __future__ import annotations
 
 import sys
-from collections import OrderedDict
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import pytest
 
+from ._plugin_state import _run, _safely, _State
 from .errors import LossguardError
 from .options import SETTINGS
 from .spec import LossSpec, declare
@@ -218,70 +218,6 @@ def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[py
 
 # -- per-run state ---------------------------------------------------------------------------
 #: most declarations whose Evaluator (its compiled functions, ~30 MB each) a worker keeps alive
-_LIVE_EVALUATORS = 4
-
-
-@dataclass(eq=False)
-class _Declared:
-    """A declaration in this process: its check results, its Evaluator (or why none) if kept."""
-
-    battery: Battery  # kept alive here, so the id() it is filed under cannot be reused
-    results: dict[str, Any] = field(default_factory=dict)
-    evaluator: Any = None
-
-
-@dataclass
-class _State:
-    """What one pytest run (one xdist worker) keeps: settings, results, failed checks."""
-
-    settings: dict[str, Any]
-    sources: dict[str, str]
-    #: whether this process runs all items of each declaration it runs (no xdist, or a lone or
-    #: loadgroup worker); a worker under another --dist cannot know which items will come
-    whole: bool = True
-    #: ``whole`` only because of ``--dist loadgroup``: trusted for a declaration only if xdist
-    #: really grouped its items (their node ids carry xdist's "@group" suffix)
-    grouped: bool = False
-    declared: dict[int, _Declared] = field(default_factory=dict)
-    live: OrderedDict[int, None] = field(default_factory=OrderedDict)  # declarations with an Evaluator
-    failures: list[tuple[str, str]] = field(default_factory=list)
-    workers: dict[str, set[str]] = field(default_factory=dict)  # declaration → xdist workers that ran it
-    adhoc: dict[tuple[Any, ...], tuple[LossSpec, Any]] = field(default_factory=dict)
-
-    def resolve(self, seed: int | None, effort: str | None) -> tuple[int, str]:
-        return (self.settings["seed"] if seed is None else seed,
-                self.settings["effort"] if effort is None else effort)
-
-    def outcome(self, bat: Battery, items: Sequence[Any], check: str) -> Any:
-        """The CheckResult of ``check`` for ``bat``, or a one-line problem.
-
-        When this process runs whole declarations (:attr:`whole`), the first item of one
-        runs the checks of all its items in one battery (XLA compiles ahead for all of them);
-        otherwise (an xdist worker, which cannot know which items will come) just ``check``, on
-        the declaration's Evaluator, kept for its next items here. No other check ever runs.
-        """
-        entry = self.declared.setdefault(id(bat), _Declared(bat))
-        if check in entry.results:
-            return entry.results[check]
-        seed, effort = self.resolve(bat.seed, bat.effort)
-        wanted = [check]
-        mine = [i for i in items if isinstance(i, CheckItem) and i.battery is bat]
-        if self.whole and (not self.grouped or all("@" in i.nodeid for i in mine)):
-            wanted += [i.check for i in mine if i.reason is None and i.check not in entry.results and i.check != check]
-        if entry.evaluator is None:
-            entry.evaluator = _safely(_new_evaluator, seed, bat.spec)
-        if isinstance(entry.evaluator, str):
-            return entry.evaluator  # the loss could not even be probed: every item says so
-        result = _safely(_run, seed, bat.spec, seed, effort, wanted, entry.evaluator)
-        for name in wanted:
-            entry.results[name] = result if isinstance(result, str) else result.check(name)
-        self.live[id(bat)] = None
-        self.live.move_to_end(id(bat))
-        while self.live and (self.whole or len(self.live) > _LIVE_EVALUATORS):
-            self.declared[self.live.popitem(last=False)[0]].evaluator = None
-        return entry.results[check]
-
-
 _STATE = pytest.StashKey[_State]()
 #: user property carrying a failed check's one-line account (travels through xdist and JUnit XML)
 _FAILURE_PROPERTY = "lossguard_failure"
@@ -289,30 +225,6 @@ _FAILURE_PROPERTY = "lossguard_failure"
 
 def _state(config: Any) -> _State:
     return config.stash[_STATE]
-
-
-def _new_evaluator(spec: LossSpec) -> Any:
-    from .evaluate import Evaluator
-
-    return Evaluator(spec)
-
-
-def _run(spec: LossSpec, seed: int, effort: str, only: list[str] | None, evaluator: Any = None) -> Any:
-    from .runner import run
-
-    return run(spec, seed=seed, effort=effort, only=only, evaluator=evaluator)
-
-
-def _safely(fn: Callable[..., Any], seed: int, *args: Any, **kwargs: Any) -> Any:
-    """``fn(*args, **kwargs)``, or the one line saying why lossguard could not run the battery."""
-    from .adapters._base import first_line
-
-    try:
-        return fn(*args, **kwargs)
-    except LossguardError as exc:
-        return f"lossguard could not run the battery: {exc}"
-    except Exception as exc:  # a defect in lossguard itself: one line, with the seed
-        return f"lossguard could not run the battery ({first_line(exc)}); please report it with seed={seed}"
 
 
 def failure_report(c: Any) -> str:

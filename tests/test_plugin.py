@@ -16,6 +16,7 @@ import hypothesis  # noqa: F401  (imported here so in-process runs do not re-imp
 import pytest
 
 import lossguard.evaluate
+import lossguard._plugin_state as plugin_state
 import lossguard.pytest_plugin as plugin
 import lossguard.runner
 from lossguard import declare
@@ -168,8 +169,8 @@ def test_a_worker_runs_one_check_per_item_and_bounds_its_evaluators(monkeypatch:
         runs.append((spec.name, list(only), evaluator))
         return Outcome(only)
 
-    monkeypatch.setattr(plugin, "_new_evaluator", fake_evaluator)
-    monkeypatch.setattr(plugin, "_run", fake_run)
+    monkeypatch.setattr(plugin_state, "_new_evaluator", fake_evaluator)
+    monkeypatch.setattr(plugin_state, "_run", fake_run)
     losses = [declare(lambda z, y, k=k: z.sum() * k, kind="categorical", name=f"loss{k}") for k in range(6)]
     batteries = [plugin.Battery(spec=spec) for spec in losses]
     state = plugin._State({"seed": 0, "effort": "quick"}, {}, whole=False)
@@ -182,7 +183,7 @@ def test_a_worker_runs_one_check_per_item_and_bounds_its_evaluators(monkeypatch:
         state.outcome(bat, [], "shift")
     assert made == [f"loss{k}" for k in range(6)]
     alive = [d.evaluator is not None for d in state.declared.values()]
-    assert sum(alive) == plugin._LIVE_EVALUATORS and not any(alive[:2])  # the oldest are released
+    assert sum(alive) == plugin_state._LIVE_EVALUATORS and not any(alive[:2])  # the oldest are released
     state.outcome(batteries[0], [], "finite")  # a released declaration builds its Evaluator again
     assert made[-1] == "loss0" and runs[-1][:2] == ("loss0", ["finite"])
 
