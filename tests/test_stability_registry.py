@@ -11,7 +11,9 @@ from __future__ import annotations
 from functools import lru_cache
 from typing import Any
 
+import jax
 import jax.numpy as jnp
+import numpy as np
 import pytest
 
 from lossguard import declare
@@ -96,3 +98,15 @@ def test_registry_twin_passes(config: str, check: str) -> None:
     assert r.verdict == "pass", f"{r.summary}\n{[(w.what, w.note) for w in r.worst]}"
     if check in ("finite", "dtypes"):
         assert r.cases > 0 and r.failed == 0
+
+
+def test_ce_twin_on_probabilities_keeps_a_finite_gradient_where_an_unused_class_has_p_0() -> None:
+    # ∂/∂p of −Σ_c y_c log p_c is −y_c/p_c, and 0 where y_c = 0 (common practice: 0 · log 0 = 0);
+    # found by the dtypes check's ladder once its mixed rows underflowed a probability to 0
+    loss = twin_loss("categorical_ce", "probabilities")
+    p = jnp.array([[0.5, 0.5, 0.0], [0.25, 0.0, 0.75]])
+    y = jnp.array([[1.0, 0.0, 0.0], [0.0, 0.0, 1.0]])
+    g = np.asarray(jax.grad(loss)(p, y))
+    assert np.all(np.isfinite(g))
+    # −y/p over a mean of 2, in float32: within a few units of float32 rounding (common practice)
+    assert np.allclose(g, [[-1.0, 0.0, 0.0], [0.0, 0.0, -0.5 / 0.75]], rtol=4 * 2.0**-24, atol=0.0)

@@ -178,9 +178,14 @@ def ce_jax(z: jax.Array, y: jax.Array, inputs: str = "logits", weight: Any = Non
             # gather p_y before the log: log of an unused p_c = 0 would put 0·(1/0) = nan in the gradient
             return -jnp.log(j_take_label(z, y))
         return -j_take_label(j_log_softmax(z), y)
-    ls = jnp.log(z) if inputs == "probabilities" else j_log_softmax(z)
+    if inputs == "probabilities":
+        # where on the log's input: a class with y_c = 0 and p_c = 0 must not reach log, whose
+        # derivative 1/0 times the zero from the outer where is nan (the double-where rule)
+        ls = jnp.log(jnp.where(y == 0, 1.0, z))
+    else:
+        ls = j_log_softmax(z)
     w = jnp.ones(z.shape[-1]) if weight is None else jnp.asarray(weight, dtype=z.dtype)
-    safe = jnp.where(y == 0, 0.0, ls)  # double-where: 0 · log 0 = 0 with a finite derivative
+    safe = jnp.where(y == 0, 0.0, ls)  # 0 · log 0 = 0 with a finite derivative
     return -jnp.sum(jnp.where(y == 0, 0.0, w * y * safe), axis=-1)
 
 
