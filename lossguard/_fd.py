@@ -58,8 +58,8 @@ import numpy as np
 from ._branch_points import THRESHOLDS, branch_points, packed_branch_points
 from .cases import CaseStack
 
-__all__ = ["LEVELS", "CHUNK_BYTES", "Estimate", "Directional", "richardson", "consistent", "directional",
-           "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
+__all__ = ["LEVELS", "CHUNK_BYTES", "THRESHOLDS", "Estimate", "Directional", "richardson", "consistent",
+           "directional", "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
            "branch_points", "packed_branch_points", "complex_step"]
 
 #: Step levels per direction: h0, h0/2, h0/4, h0/8.
@@ -70,8 +70,9 @@ H0_LOGITS = 2.0 ** -5
 CHUNK_BYTES = 64 * 2**20
 #: Directions with at most this many coordinates are replaced by the coordinate axes.
 FULL_JACOBIAN_MAX = 12
-#: Dense directions with more coordinates than this (2^16; the menu's shapes have at most a few
-#: thousand) are drawn uniform on a cube instead of Gaussian.
+#: Dense directions with more coordinates than this (2^16; the default menu's shapes have at
+#: most a few thousand, a declared class count can exceed it) are drawn uniform on a cube
+#: instead of Gaussian.
 CUBE_DIRECTIONS_ABOVE = 2**16
 
 

@@ -26,8 +26,8 @@ if TYPE_CHECKING:
 
 __all__ = ["_State", "_Declared", "_safely", "_run", "_new_evaluator"]
 
-#: Declarations whose Evaluator a worker keeps alive (xdist workers, which cannot know which
-#: items come next); the least recently used is dropped.
+#: Most declarations whose Evaluator (its compiled functions, ~30 MB each) an xdist worker keeps
+#: alive (it cannot know which items come next); the least recently used is dropped.
 _LIVE_EVALUATORS = 4
 
 

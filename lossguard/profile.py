@@ -262,7 +262,8 @@ def profile(
         A :class:`Profile`; ``render_profile`` prints it, ``lossguard profile --png`` plots it.
     """
     if effort not in ROWS_BY_EFFORT:
-        raise SpecError(bad_value("effort", effort, "quick, default or thorough", did_you_mean(str(effort), ROWS_BY_EFFORT)))
+        raise SpecError(bad_value("effort", effort, "quick, default or thorough",
+                                  did_you_mean(str(effort), ROWS_BY_EFFORT)))
     t0 = time.perf_counter()
     dtypes = tuple(d for d in DTYPES if d in dtypes)
     ev = evaluator or Evaluator(spec)

@@ -216,8 +216,7 @@ def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[py
     return [item(check, obj, reason) for check, reason in selection]
 
 
-# -- per-run state ---------------------------------------------------------------------------
-#: most declarations whose Evaluator (its compiled functions, ~30 MB each) a worker keeps alive
+# -- per-run state (lossguard._plugin_state) ---------------------------------------------------
 _STATE = pytest.StashKey[_State]()
 #: user property carrying a failed check's one-line account (travels through xdist and JUnit XML)
 _FAILURE_PROPERTY = "lossguard_failure"

@@ -15,8 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .._budget import case_count
-from ..cases import (CaseStack, Cell, cases_per_cell, concat, ladder_stack, pack_rows, random_stack, shape_menu,
-                     target_domain)
+from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, random_stack, shape_menu, target_domain
 from ..evaluate import Evaluator
 from ..result import CheckResult
 from ..spec import LossSpec
@@ -147,14 +146,17 @@ class Context:
         return self._stacks[key]
 
     def standard_cases(self, cell: Cell) -> CaseStack:
-        """Random and ladder cases of ``cell`` together. Once a case is large the random cases
-        are packed row by row into as few cases as :func:`~lossguard._budget.case_count` allows
-        (one at (4096, 1000)); the ladder stays in cases of its own. Allowances scale with a
-        case's largest logit, so a ladder row at |z| = 1e4 in a random case would widen the
-        allowance of every random row beside it about a thousandfold."""
+        """Random and ladder cases of ``cell`` together. Once a case is large, only the first
+        :func:`~lossguard._budget.case_count` random cases are kept (one at (4096, 1000)), each
+        whole, and the ladder stays in cases of its own. Allowances scale with a case's largest
+        |logit|: rows of different scales in one case (random cases are drawn at log-uniform
+        scales from 0.01 to 30; the ladder reaches 1e4) would widen the allowance of the
+        smaller-scale rows by as much as the ratio of the scales."""
         key = ("standard", cell)
         if key not in self._stacks:
             rand = self.random_cases(cell)
-            rand = pack_rows(rand, case_count(len(rand), cell.elements(), least=1))
+            keep = case_count(len(rand), cell.elements(), least=1)
+            if keep < len(rand):
+                rand = rand.take(np.arange(keep))
             self._stacks[key] = concat([rand, self.ladder_cases(cell)])
         return self._stacks[key]

@@ -271,8 +271,8 @@ def _run(ctx: Context) -> CheckResult:
         return CheckResult(name="gradient", verdict="skip",
                            summary=("no gradient oracle: the loss is not JAX-traceable and declares no "
                                     "grad; declare grad=... to have it checked"))
-    # the special points stay in cases of their own: packed with random rows, their larger
-    # logits would widen the random rows' allowance (it scales with a case's largest logit)
+    # the special points keep cases of their own (their logits reach 30: beside random rows they
+    # would widen those rows' allowance, which scales with a case's largest |logit|)
     stacks: list[CaseStack] = []
     for cell in ctx.cells:
         parts = [ctx.standard_cases(cell), special_cases(ctx, cell)]
