@@ -75,9 +75,11 @@ class _State:
             return entry.results[check]
         seed, effort = self.resolve(bat.seed, bat.effort)
         wanted = [check]
-        mine = [i for i in items if getattr(i, "battery", None) is bat]  # this declaration's check items
-        if self.whole and (not self.grouped or all("@" in i.nodeid for i in mine)):
-            wanted += [i.check for i in mine if i.reason is None and i.check not in entry.results and i.check != check]
+        # this declaration's items that run a check (skipped ones get no xdist group, so no "@")
+        mine = [i for i in items if getattr(i, "battery", None) is bat and i.reason is None]
+        whole = self.whole and (not self.grouped or all("@" in i.nodeid for i in mine))
+        if whole:
+            wanted += [i.check for i in mine if i.check not in entry.results and i.check != check]
         if entry.evaluator is None:
             entry.evaluator = _safely(_new_evaluator, seed, bat.spec)
         if isinstance(entry.evaluator, str):
@@ -85,10 +87,14 @@ class _State:
         result = _safely(_run, seed, bat.spec, seed, effort, wanted, entry.evaluator)
         for name in wanted:
             entry.results[name] = result if isinstance(result, str) else result.check(name)
-        self.live[id(bat)] = None
-        self.live.move_to_end(id(bat))
-        while self.live and (self.whole or len(self.live) > _LIVE_EVALUATORS):
-            self.declared[self.live.popitem(last=False)[0]].evaluator = None
+        if whole:  # every item of the declaration is answered: its Evaluator is no longer needed
+            entry.evaluator = None
+            self.live.pop(id(bat), None)
+        else:  # more of its items may come: keep the Evaluator, the few most recent of them
+            self.live[id(bat)] = None
+            self.live.move_to_end(id(bat))
+            while len(self.live) > _LIVE_EVALUATORS:
+                self.declared[self.live.popitem(last=False)[0]].evaluator = None
         return entry.results[check]
 
 
