@@ -58,8 +58,8 @@ def branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: 
 
 def packed_branch_points(spec: LossSpec, cell: Cell, rng: np.random.Generator, domain: str = "soft",
                          k: int = 6) -> CaseStack:
-    """:func:`branch_points` packed into ``k`` cases in the row order of
-    :func:`lossguard.cases.pack_rows` (row r of case j has the kind (j + r) mod 6), drawing only
+    """:func:`branch_points` packed into ``k`` cases, row by row: row r of case j has the kind
+    (j + r) mod 6, so every kind keeps rows in every case while k < 6. It draws only
     the rows that are used: at (4096, 1000) one case instead of six drawn and five sixths dropped.
     Every row of a special case is built on its own, so a row drawn in a shorter case is a row
     of the same kind. ``branch_points`` itself when ``k`` ≥ 6.

@@ -28,7 +28,7 @@ from .options import EFFORTS
 from .spec import LossSpec
 
 __all__ = ["Cell", "CaseStack", "EFFORTS", "shape_menu", "cases_per_cell", "target_domain",
-           "random_stack", "ladder_stack", "pack_rows", "ladder_case_count", "to_inputs", "concat", "draw_targets",
+           "random_stack", "ladder_stack", "ladder_case_count", "to_inputs", "concat", "draw_targets",
            "LADDER_LEAST"]
 
 #: Fewest cases the shared ladder is packed into at the largest shapes: one, holding every
@@ -300,27 +300,6 @@ def ladder_stack(
             notes.append("ladder packed, rows in turn: " + ", ".join(f"{p} |z|={m:.3g}" for p, m in
                                                                       (pairs[i] for i in group)))
     return CaseStack(to_inputs(spec, z), np.stack(targs), cell, notes)
-
-
-def pack_rows(stack: CaseStack, k: int) -> CaseStack:
-    """``k`` cases whose rows take the cases of ``stack`` in turn: row r of case j is row r of
-    case (j + r) mod K. Every case of ``stack`` keeps rows in the result while k < K; a large
-    shape then costs k evaluations instead of K. ``stack`` itself when k ≥ K.
-
-    Example:
-        >>> s = CaseStack(np.arange(12.0).reshape(3, 4), np.zeros((3, 4)), Cell(4, d=None))
-        >>> pack_rows(s, 1).predictions.tolist()
-        [[0.0, 5.0, 10.0, 3.0]]
-    """
-    big = len(stack)
-    if k >= big:
-        return stack
-    n = stack.predictions.shape[1]
-    src = (np.arange(k)[:, None] + np.arange(n)[None, :]) % big  # (k, N): the case each row comes from
-    rows = np.broadcast_to(np.arange(n)[None, :], src.shape)
-    kinds = sorted(set(stack.notes)) if stack.notes else []
-    note = "rows in turn from: " + "; ".join(kinds) if kinds else "rows in turn"
-    return CaseStack(stack.predictions[src, rows], stack.targets[src, rows], stack.cell, [note] * k)
 
 
 def concat(stacks: Sequence[CaseStack]) -> CaseStack:

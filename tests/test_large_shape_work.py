@@ -146,6 +146,9 @@ def test_packed_special_points_keep_each_kind_in_its_rows() -> None:
     assert np.all((z[r % 6 == 2] == lab[:, None]).sum(axis=1) >= 2)  # the label tied with another
     assert np.all(z[r % 6 == 5] == 3.0)  # every class tied
     assert np.isin(z[r % 6 == 4], fd.THRESHOLDS).all()
+    two = fd.packed_branch_points(spec, cell, np.random.default_rng(4), k=2)
+    assert np.all(two.predictions[1][(1 + r) % 6 == 0] == 0.0)  # case j, row r: kind (j + r) mod 6
+    assert np.all(two.predictions[1][(1 + r) % 6 == 5] == 3.0)
 
 
 def test_mismatch_of_large_cases_one_at_a_time_equals_the_whole_stack_at_once() -> None:

@@ -12,7 +12,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from lossguard import declare
-from lossguard.cases import CaseStack, Cell, pack_rows
+from lossguard.cases import Cell
 from lossguard.checks import Context
 from lossguard.checks._compare import Mismatch
 from lossguard.checks.gradient import special_cases
@@ -34,16 +34,6 @@ def test_special_points_keep_six_cases_at_the_menu_and_pack_into_one_at_a_large_
     # row r comes from special case r mod 6: case 0 is all zeros, case 5 has every class tied at 3
     assert np.all(rows[0::6] == 0.0) and np.all(rows[5::6] == 3.0)
     assert all(k in big.note(0) for k in ("all zero", "all tied", "branch thresholds"))
-
-
-def test_pack_rows_takes_rows_in_turn_and_leaves_small_stacks_alone():
-    z = np.arange(24.0).reshape(3, 4, 2)
-    s = CaseStack(z, np.zeros((3, 4), dtype=np.int64), Cell(4, 2))
-    assert pack_rows(s, 3) is s
-    two = pack_rows(s, 2)
-    # case j, row r ← case (j + r) mod 3, row r
-    assert np.array_equal(two.predictions[0], np.stack([z[0, 0], z[1, 1], z[2, 2], z[0, 3]]))
-    assert np.array_equal(two.predictions[1], np.stack([z[1, 0], z[2, 1], z[0, 2], z[1, 3]]))
 
 
 def _plain(g, e, atol):

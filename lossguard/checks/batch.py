@@ -43,7 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .._search import Part, Tally, mismatch_examples, single, value_and_grad
-from .._budget import one_case_per_call
+from .._budget import large_case
 from ..cases import CaseStack, Cell
 from ..references import get_reference
 from ..result import CheckResult
@@ -256,7 +256,7 @@ def _run(ctx: Context) -> CheckResult:
         x = ctx.standard_cases(cell)
         order = np.roll(np.arange(len(x)), len(x) // 2)  # pair random cases with ladder cases
         x2 = x.take(order)
-        if not one_case_per_call(cell):
+        if not large_case(cell.elements()):
             evals.append((cell, evaluate(ctx, x, x2, ctx.rng(f"batch {cell}"), cell == big, partner=order)))
             continue
         for i in range(len(x)):  # large cases one pair at a time: every array stays one case big

@@ -57,7 +57,7 @@ import numpy as np
 
 from .. import _fd
 from .._taylor import taylor_along, taylor_orders
-from .._budget import case_count, one_case_per_call
+from .._budget import case_count, large_case
 from ..cases import CaseStack, Cell, concat
 from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
@@ -276,7 +276,7 @@ def _run(ctx: Context) -> CheckResult:
     stacks: list[CaseStack] = []
     for cell in ctx.cells:
         parts = [ctx.standard_cases(cell), special_cases(ctx, cell)]
-        stacks += parts if one_case_per_call(cell) else [concat(parts)]  # large cases are probed one by one
+        stacks += parts if large_case(cell.elements()) else [concat(parts)]  # large cases are probed one by one
     return check_stacks(ctx, stacks)
 
 
@@ -297,7 +297,7 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     pieces: dict[Cell, int] = {}
     for stack in stacks:
         forward = stack.cell == stacks[-1].cell  # forward mode compiles: the last shape only
-        if one_case_per_call(stack.cell):
+        if large_case(stack.cell.elements()):
             # large cases one at a time, each with its own draws: every array stays one case big
             for j in range(len(stack)):
                 m = pieces[stack.cell] = pieces.get(stack.cell, -1) + 1
