@@ -38,6 +38,7 @@ __all__ = [
     "sigmoid",
     "logsumexp",
     "log_softmax",
+    "label_log_softmax",
     "softmax",
     "log1m_softmax_at",
     "take_label",
@@ -126,17 +127,29 @@ def sigmoid(x: ArrayLike) -> np.ndarray:
 # ---------------------------------------------------------------------- categorical primitives
 
 
-def _shifted(x: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(m, x − m, s) with m the max along ``axis`` and s = Σ_{c ≠ argmax} e^(x_c − m)."""
+def _shifted_exp(x: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(m, x − m, e, s): m the max along ``axis``, e = e^(x − m) and s = Σ_{c ≠ argmax} e_c.
+
+    ``e`` is returned whole (its argmax entry put back after the sum), so callers that need the
+    exponentials do not take them twice; full-size temporaries are few, as at (4096, 1000)
+    logits each one costs milliseconds.
+    """
     m = np.max(x, axis=axis, keepdims=True)
     finite_m = np.where(np.isfinite(m), m, 0.0)
     with np.errstate(over="ignore"):  # −big − big → −inf: the correctly rounded log-probability
         d = x - finite_m  # shift by the max: logsumexp(x) = m + logsumexp(x − m)
     e = np.exp(d)
-    k = np.argmax(x, axis=axis)
-    k = np.expand_dims(k, axis)
+    k = np.expand_dims(np.argmax(x, axis=axis), axis)
+    top = np.take_along_axis(e, k, axis=axis)  # e⁰ = 1 when m is finite
     np.put_along_axis(e, k, 0.0, axis=axis)  # drop the max term, which is exactly e⁰ = 1
     s = np.sum(e, axis=axis, keepdims=True)
+    np.put_along_axis(e, k, top, axis=axis)
+    return m, d, e, s
+
+
+def _shifted(x: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(m, x − m, s) with m the max along ``axis`` and s = Σ_{c ≠ argmax} e^(x_c − m)."""
+    m, d, _, s = _shifted_exp(x, axis)
     return m, d, s
 
 
@@ -180,7 +193,7 @@ def log_softmax(x: ArrayLike, axis: int = -1) -> np.ndarray:
     x = f64(x)
     _, d, s = _shifted(x, axis)
     # log softmax_c = (x_c − m) − log Σ e^(x − m); the argmax entry is then exactly −log1p(s)
-    return d - np.log1p(s)
+    return np.subtract(d, np.log1p(s), out=d)  # d is a fresh array: reuse it
 
 
 def softmax(x: ArrayLike, axis: int = -1) -> np.ndarray:
@@ -198,9 +211,25 @@ def softmax(x: ArrayLike, axis: int = -1) -> np.ndarray:
         [0.5, 0.5]
     """
     x = f64(x)
-    _, d, s = _shifted(x, axis)
+    _, _, e, s = _shifted_exp(x, axis)
     # softmax is invariant to subtracting m; the denominator Σ e^(x − m) equals 1 + s exactly
-    return np.exp(d) / (1.0 + s)
+    return np.divide(e, 1.0 + s, out=e)  # e is a fresh array: reuse it
+
+
+def label_log_softmax(x: ArrayLike, y: ArrayLike) -> np.ndarray:
+    """log softmax(x)_y row by row: ``take_label(log_softmax(x), y)`` without the full-size result.
+
+    Shapes: ``x`` (…, C), labels ``y`` (…) → (…).
+    Formula: (x_y − m) − log1p(Σ_{c ≠ argmax} e^(x_c − m)), the same arithmetic as
+    :func:`log_softmax`, entry for entry.
+
+    Example:
+        >>> label_log_softmax(np.array([[0.0, 0.0]]), np.array([1])).tolist()
+        [-0.6931471805599453]
+    """
+    x = f64(x)
+    _, d, s = _shifted(x, -1)
+    return take_label(d, y) - np.log1p(s[..., 0])
 
 
 def onehot(y: ArrayLike, classes: int) -> np.ndarray:

@@ -51,8 +51,8 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from ._base import Param, Reference
-from ._stable import (f64, j_log_softmax, j_take_label, log_softmax, onehot, softmax, take_label,
-                      xlogy)
+from ._stable import (f64, j_log_softmax, j_take_label, label_log_softmax, log_softmax, onehot, softmax,
+                      take_label, xlogy)
 
 __all__ = ["CATEGORICAL_CE", "SMOOTHED_CE", "ce_per_example", "ce_per_example_grad", "ce_jax",
            "smoothed_per_example", "smoothed_per_example_grad", "smoothed_jax",
@@ -116,6 +116,8 @@ def ce_per_example(
         Good, JRSS B, 1952.
     """
     z = f64(z)
+    if _is_labels(z, y) and inputs != "probabilities":
+        return -label_log_softmax(z, y)  # only the label's entry of log softmax is needed
     with np.errstate(divide="ignore"):
         ls = np.log(z) if inputs == "probabilities" else log_softmax(z)
     if _is_labels(z, y):
@@ -148,6 +150,13 @@ def ce_per_example_grad(
     """
     z = f64(z)
     c = z.shape[-1]
+    if _is_labels(z, y) and inputs != "probabilities":
+        p = softmax(z)
+        lab = np.asarray(y, dtype=np.int64)[..., None]
+        np.put_along_axis(p, lab, 0.0, axis=-1)
+        # p_y − 1 = −Σ_{c≠y} p_c: summing the others avoids the cancellation when p_y ≈ 1
+        np.put_along_axis(p, lab, -np.sum(p, axis=-1, keepdims=True), axis=-1)
+        return p
     if _is_labels(z, y):
         t, w = onehot(y, c), np.ones(c)
     else:
