@@ -34,6 +34,7 @@ def main() -> None:
 
     import lossguard
     import speed_losses
+    from lossguard._budget import call_size
     from lossguard.adapters import jax_loss
     from lossguard.checks import Context, select_checks
     from lossguard.evaluate import Evaluator
@@ -44,8 +45,7 @@ def main() -> None:
     original = jax_loss.JaxAdapter._run
 
     def recording(self: Any, op: str, arrays: list[Any], dtype: str, float_mask: list[bool], **kw: Any) -> Any:
-        k = arrays[0].shape[0]
-        shape = ((jax_loss.bucket(k, int(np.prod(arrays[0].shape[1:]))) if self.vectorised else 1,)
+        shape = ((call_size(int(np.prod(arrays[0].shape[1:]))) if self.vectorised else 1,)
                  + tuple(arrays[0].shape[1:]))
         first_needed.setdefault((id(self), op, dtype, shape), current[0])
         return original(self, op, arrays, dtype, float_mask, **kw)

@@ -19,21 +19,19 @@ function's docstring shows a ``@given`` use.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from typing import Any, NamedTuple
 
 import numpy as np
 from hypothesis import strategies as st
-from hypothesis.errors import InvalidArgument
 from hypothesis.extra import numpy as hnp
 
-from ._suggest import bad_value, did_you_mean
+from ._strategy_args import (MAX_ELEMENTS, StrategyArgumentError, _dtype, _fail, _flag, _int, _magnitude,
+                             _one_shape, _shapes)
 from .cases import Cell, shape_menu, target_domain, to_inputs
-from .errors import SpecError
 from .ladders import largest_finite, magnitudes
 from .spec import LossSpec
-from .tolerance import DTYPES, dtype_of
+from .tolerance import dtype_of
 
 __all__ = ["StrategyArgumentError", "Case", "DEFAULT_SHAPES", "DEFAULT_BINARY_SHAPES", "logits", "labels",
            "binary_targets", "simplex_targets", "cases"]
@@ -41,15 +39,9 @@ __all__ = ["StrategyArgumentError", "Case", "DEFAULT_SHAPES", "DEFAULT_BINARY_SH
 #: The default menus of logit shapes: (N, C) as a default battery uses, and binary (N,), (N, D).
 DEFAULT_SHAPES: tuple[tuple[int, ...], ...] = ((8, 3), (16, 10))
 DEFAULT_BINARY_SHAPES: tuple[tuple[int, ...], ...] = ((16,), (8, 3))
-#: Largest number of elements one drawn array may have (keeps draws and shrinking fast).
-MAX_ELEMENTS = 10_000
 #: Smallest weight of a class in a dense simplex row before normalising (2^-10 keeps rows interior).
 _MIN_WEIGHT = 2.0**-10
 _TIES = ("none", "pair", "row")
-
-
-class StrategyArgumentError(SpecError, InvalidArgument):
-    """A strategy was given an invalid argument (a Hypothesis ``InvalidArgument`` too)."""
 
 
 class Case(NamedTuple):
@@ -57,59 +49,6 @@ class Case(NamedTuple):
 
     predictions: np.ndarray
     targets: np.ndarray
-
-
-# ------------------------------------------------------------------------------ validation
-
-
-def _fail(name: str, value: Any, expected: str, hint: str) -> StrategyArgumentError:
-    return StrategyArgumentError(bad_value(name, value, expected, hint))
-
-
-def _int(name: str, value: Any, low: int, hint: str, high: int | None = None) -> int:
-    ok = isinstance(value, (int, np.integer)) and not isinstance(value, bool)
-    if not ok or value < low or (high is not None and value > high):
-        rng = f"an integer >= {low}" if high is None else f"an integer in [{low}, {high}]"
-        raise _fail(name, value, rng, hint)
-    return int(value)
-
-
-def _flag(name: str, value: Any) -> bool:
-    if not isinstance(value, bool):
-        raise _fail(name, value, "True or False", f"try {name}=True")
-    return value
-
-
-def _dtype(value: Any) -> str:
-    if str(value) not in DTYPES:
-        raise _fail("dtype", value, "one of " + ", ".join(DTYPES), did_you_mean(str(value), DTYPES))
-    return str(value)
-
-
-def _one_shape(name: str, shape: Any) -> tuple[int, ...]:
-    ok = isinstance(shape, (tuple, list)) and 1 <= len(shape) <= 3
-    if not ok or not all(isinstance(s, (int, np.integer)) and not isinstance(s, bool) and s >= 1 for s in shape):
-        raise _fail(name, shape, "a tuple of 1 to 3 positive integers", "try (8, 3)")
-    if math.prod(shape) > MAX_ELEMENTS:
-        raise _fail(name, shape, f"at most {MAX_ELEMENTS} elements", "try (8, 3)")
-    return tuple(int(s) for s in shape)
-
-
-def _shapes(name: str, value: Any, default: Sequence[tuple[int, ...]]) -> list[tuple[int, ...]]:
-    """A fixed shape (tuple of ints) or a menu (list of such tuples); ``None`` is ``default``."""
-    if value is None:
-        return list(default)
-    if isinstance(value, (tuple, list)) and value and all(isinstance(s, (tuple, list)) for s in value):
-        return [_one_shape(name, s) for s in value]
-    return [_one_shape(name, value)]
-
-
-def _magnitude(name: str, value: Any, top: float) -> float:
-    ok = isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool)
-    if not ok or not math.isfinite(float(value)) or not 0.0 <= float(value) <= top:
-        raise _fail(name, value, f"a finite number in [0, {top:.6g}] (the dtype's largest finite)",
-                    f"try {name}=1e4")
-    return float(value)
 
 
 # ------------------------------------------------------------------------------ strategies

@@ -25,7 +25,7 @@ from .._budget import MAX_CALL_SIZE, call_size
 from ..tolerance import dtype_of
 from ._base import call_failed
 
-__all__ = ["JaxAdapter", "Planned", "bucket"]
+__all__ = ["JaxAdapter", "Planned"]
 
 #: One compiled function a battery will need: (operation, dtype, predictions shape of one case,
 #: targets shape of one case, targets are floats). See :meth:`JaxAdapter.prepare`.
@@ -45,12 +45,6 @@ def compile_threads() -> int:
     if workers.isdigit() and int(workers) >= cores:
         return 1
     return COMPILE_THREADS
-
-
-def bucket(k: int, case_elements: int = 1) -> int:
-    """The stack size of one compiled call for cases of ``case_elements`` prediction elements
-    (``k``, the cases wanted, does not change it: longer stacks take several calls)."""
-    return call_size(case_elements)
 
 
 def _pad(a: np.ndarray, size: int) -> np.ndarray:
@@ -137,7 +131,7 @@ class JaxAdapter:
 
     # -- compiling ahead -----------------------------------------------------------------------
     def _avals(self, op: str, dtype: str, pred: tuple[int, ...], targ: tuple[int, ...], y_float: bool) -> list[Any]:
-        size = bucket(1, int(np.prod(pred)))
+        size = call_size(int(np.prod(pred)))
         x64 = dtype == "float64"
         dt = dtype_of(dtype)
         int_dt = np.int64 if x64 else np.int32
@@ -165,7 +159,7 @@ class JaxAdapter:
             return
         jobs = []
         for op, dtype, pred, targ, y_float in plan:
-            key = (op, dtype, (bucket(1, int(np.prod(pred))),) + tuple(pred))
+            key = (op, dtype, (call_size(int(np.prod(pred))),) + tuple(pred))
             if key in self._prepared:
                 continue
             self._prepared.add(key)
@@ -220,7 +214,7 @@ class JaxAdapter:
                                               else np.asarray(o, dtype=np.float64), out)
 
             if self.vectorised:
-                size = bucket(k, int(np.prod(arrays[0].shape[1:])))
+                size = call_size(int(np.prod(arrays[0].shape[1:])))
                 outs = []
                 for start in range(0, k, size):  # one compiled size per shape: pad the last call
                     part = [a[start:start + size] for a in arrays]
@@ -247,7 +241,7 @@ class JaxAdapter:
     def values(self, z: np.ndarray, y: np.ndarray, dtype: str, *, eager: bool = False) -> np.ndarray:
         if eager:
             return self._eager_values(z, y, dtype)
-        small = bucket(1, int(np.prod(z.shape[1:]))) == MAX_CALL_SIZE
+        small = call_size(int(np.prod(z.shape[1:]))) == MAX_CALL_SIZE
         if self._values_by_vg and small:
             # at the menu's shapes the value-and-gradient function serves values too (no second
             # compilation); for large cases the arithmetic saved by a value function outweighs one

@@ -33,14 +33,26 @@ __all__ = ["Tally", "point_values", "sum_out", "dots", "slope_allowance", "examp
 
 
 def point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray, out: tuple[int, ...]) -> np.ndarray:
-    """float64 loss values at every z ± h_l v: (K, D, 2, J, *out)."""
+    """float64 loss values at every z ± h_l v, the points streamed by :func:`lossguard._fd.point_stacks`.
+
+    Args:
+        ev: the battery's evaluator. stack: K cases (predictions (K, *S)).
+        v: unit directions (K, D, *S). h0: base steps (K, D). out: the loss's output shape per case.
+    Returns:
+        (K, D, 2, J, *out): sign + then −, J step levels h0 · 2^(−l).
+    """
     parts = [ev.values(pts, "float64") for _, pts in _fd.point_stacks(stack, v, h0)]  # each chunk used at once
     return np.concatenate(parts).reshape((-1,) + v.shape[1:2] + (2, _fd.LEVELS) + out)
 
 
 @dataclass
 class Tally:
-    """What the cells found, pair by pair."""
+    """What the cells found, pair by pair (oracle against oracle), summed over the cells' probes.
+
+    ``pairs`` counts failing cases per pair; ``worst`` keeps (error / allowance, example); ``ratio``
+    is the largest error over allowance seen; the rest feed the check's details (kinks met,
+    directions judged or skipped, observed Taylor orders, finite-difference allowances, notes).
+    """
 
     total: int = 0
     bad: int = 0
@@ -57,6 +69,7 @@ class Tally:
     float32_cases: int = 0
 
     def add(self, pair: str, bad: np.ndarray, ratio: np.ndarray, examples: list[tuple[float, Example]]) -> None:
+        """Record one comparison: ``bad`` (K,) failing cases, ``ratio`` (K,) error / allowance."""
         if bad.any():
             self.pairs[pair] = self.pairs.get(pair, 0) + int(bad.sum())
         finite = ratio[np.isfinite(ratio)]
@@ -66,6 +79,7 @@ class Tally:
 
 
 def sum_out(a: np.ndarray, lead: int) -> np.ndarray:
+    """``a`` summed over every axis after the first ``lead``: (*L, *rest) → (*L)."""
     return a.reshape(a.shape[:lead] + (-1,)).sum(axis=-1)
 
 
@@ -77,7 +91,15 @@ def dots(g: np.ndarray, v: np.ndarray) -> np.ndarray:
 
 
 def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale: np.ndarray, n: int) -> np.ndarray:
-    """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3)."""
+    """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3).
+
+    Args:
+        g: gradients (K, *S). v: directions (K, D, *S). scale: S, each case's largest |logit| (K,).
+        grad_scale: G, the size of one gradient term (K,) or a number. n: operations per element.
+    Returns:
+        (K, D) absolute allowances: the gradient's own rounding (first term) and the dot product's
+        (second, m = the number of elements of a case).
+    """
     k, d = v.shape[:2]
     ag = np.abs(g.reshape(k, -1))
     gmax = np.where(np.isfinite(ag), ag, 0.0).max(axis=1)
@@ -96,6 +118,9 @@ def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale:
 
 def example(ctx: Context, stack: CaseStack, k: int, what: str, got: float, expected: object,
              err: float, tol: float, note: str) -> tuple[float, Example]:
+    """(error / allowance, the :class:`Example`) for case ``k`` of ``stack``, with its replay line;
+    ``expected`` may be text (a one-sided interval at a kink), then the relative error is the
+    absolute one."""
     ref = float(expected) if isinstance(expected, (float, np.floating)) else float("nan")
     rel = err / abs(ref) if np.isfinite(ref) and ref != 0 else err
     ex = Example(what=what, predictions=stack.predictions[k], targets=stack.targets[k], got=got,
@@ -108,7 +133,19 @@ def example(ctx: Context, stack: CaseStack, k: int, what: str, got: float, expec
 def directional_pair(ctx: Context, tally: Tally, stack: CaseStack, what: str, slope: np.ndarray,
                       fd: _fd.Directional, a_dot: np.ndarray, labels: list[str],
                       taylor: TaylorResult | None) -> tuple[np.ndarray, np.ndarray]:
-    """Compare an oracle's slopes (K, D) with the finite differences; returns (bad per case, bad (K, D))."""
+    """Compare an oracle's slopes with the finite differences and record the result in ``tally``.
+
+    Where the loss is smooth along a direction, the slope must lie within the central estimate's
+    allowance plus the slope's own ``a_dot``; at a kink, between the one-sided estimates (with
+    their error bounds as margin).
+
+    Args:
+        slope: the oracle's g·v (K, D). fd: the finite-difference estimates (K, D).
+        a_dot: rounding allowance of the slopes (K, D). labels: one name per direction (D,).
+        taylor: observed Taylor orders for the examples' notes, or ``None``.
+    Returns:
+        (bad per case (K,), bad per case and direction (K, D)).
+    """
     c_est, f_est, b_est = fd.central, fd.forward, fd.backward
     smooth = fd.smooth
     tol = fd.allowance() + a_dot
