@@ -327,3 +327,27 @@ def test_jax_twins_keep_the_derivative_at_the_kinks_of_their_stable_forms():
         g = jax.grad(lambda q: ce_jax(q, jnp.array([0]), inputs="probabilities").sum())(p)
         # ∂(−log p_0)/∂p = (−1/p_0, 0, 0) (common practice)
         np.testing.assert_allclose(np.asarray(g), [[-1 / 0.7, 0.0, 0.0]], rtol=1e-15)
+
+
+def test_label_shortcuts_give_the_full_formulas_bit_for_bit() -> None:
+    # the label paths gather before building full-size arrays; the numbers must be those of the
+    # written-out formulas: −log softmax(z)_y, and p − onehot(y) with p_y − 1 taken as −Σ_{c≠y} p_c
+    from lossguard.references._stable import label_log_softmax, log_softmax, onehot, softmax, take_label
+
+    rng = np.random.default_rng(11)
+    for trial in range(60):
+        z = rng.normal(0.0, 10.0 ** rng.uniform(-3, 4), (9, 7))
+        if trial % 3 == 0:
+            z[2] = z[2, 0]  # a row of ties
+        if trial % 4 == 0:
+            z[0, 3] = np.inf  # an infinite logit: the special values must match too
+        y = rng.integers(0, 7, 9)
+        with np.errstate(all="ignore"):
+            want_ls = take_label(log_softmax(z), y)
+            p, t = softmax(z), onehot(y, 7)
+            others = np.sum(np.where(t > 0, 0.0, p), axis=-1, keepdims=True)
+            want_g = np.where(t > 0, -others, p)
+            got_ls, got_g, got_v = label_log_softmax(z, y), CE.per_example_grad(z, y), CE.per_example(z, y)
+        assert got_ls.tobytes() == want_ls.tobytes()
+        assert got_g.tobytes() == want_g.tobytes()
+        assert got_v.tobytes() == (-want_ls).tobytes()
