@@ -17,6 +17,11 @@ test module in a temporary directory:
 Below the table: the best speed-up the CPU time allows (``-n 1`` already keeps more than one
 core busy, since XLA compiles in background threads while checks run), and the start-up costs.
 
+``--pinned`` times the ``-n 1`` run of the ``plugin`` style (or the first style timed) once more,
+pinned to one core (``taskset -c 0``): if it takes about as long as the all-core run's CPU
+seconds, the extra core a ``-n 1`` run keeps busy does work the run needs, and the CPU ceiling
+printed with the table binds.
+
 ``--env NAME=VALUE`` (repeatable) adds the plugin rows again with these variables set in the
 environment of both runs: an opt-in a user could make (such as JAX's persistent compilation
 cache, ``JAX_COMPILATION_CACHE_DIR``); lossguard never sets them itself. Those rows start
@@ -164,6 +169,8 @@ def main() -> None:
                         help=f"comma-separated, from: {', '.join(STYLES)}")
     parser.add_argument("--env", action="append", default=[], metavar="NAME=VALUE",
                         help="also time the plugin styles with these environment variables set")
+    parser.add_argument("--pinned", action="store_true",
+                        help="also time the plugin style's -n 1 run pinned to one core (taskset -c 0)")
     args = parser.parse_args()
     styles = [s.strip() for s in args.styles.split(",") if s.strip()]
     unknown = [s for s in styles if s not in STYLES]
@@ -198,10 +205,29 @@ def main() -> None:
         f = figures["plugin"]
         print(f"headline (plugin, --dist load): -n 1 {f['w1']:.1f} s, -n 2 {f['w2']:.1f} s, "
               f"speed-up {f['speedup']:.2f}×; target ≥ {TARGET}× met: {'yes' if f['speedup'] >= TARGET else 'no'}")
-        cores = os.cpu_count() or 2
+        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 2
         print(f"ceiling from CPU: -n 1 used {f['c1']:.1f} CPU s in {f['w1']:.1f} s ({f['c1'] / f['w1']:.2f} cores); "
               f"on {cores} cores -n 2 cannot take less than {f['c1'] / cores:.1f} s without doing less work: "
               f"at most {f['w1'] * cores / f['c1']:.2f}×")
+    timed = [k for k in figures if k != "startup"]
+    if args.pinned and timed:
+        first = "plugin" if "plugin" in timed else timed[0]
+        kind, extra = STYLES[first]
+        with tempfile.TemporaryDirectory(prefix="lossguard-pinned-") as tmp:
+            path = Path(tmp) / f"test_suite_{kind}.py"
+            path.write_text(_module(kind, args.effort))
+            cmd = ["taskset", "-c", "0", sys.executable, "-m", "pytest", str(path), "-q", "-p", "no:cacheprovider",
+                   "-o", "addopts=", "--rootdir", tmp, "-n", "1", f"--lossguard-effort={args.effort}", *extra]
+            wall, cpu, code, out = _timed(cmd, path.parent, base_env)
+        if code not in (0, 1):
+            raise SystemExit(f"pinned run failed ({code}):\n{out[-3000:]}")
+        f = figures[first]
+        # on one core the wall time is at least the CPU time; if it comes close to the CPU time the
+        # two-core run used, that CPU time is work the run needs (not threads spinning idle)
+        print(f"pinned ({first}, -n 1 on one core, one run): {wall:.1f} s, {cpu:.1f} CPU s; on all cores "
+              f"(median) {f['w1']:.1f} s, {f['c1']:.1f} CPU s: one core takes {wall / f['w1']:.2f}× as long, "
+              f"{wall / f['c1']:.2f}× the all-core run's CPU seconds")
+    if "plugin" in figures:
         if "startup" in figures:
             s0 = figures["startup"]
             print(f"start-up: -n 1 spends {s0['w1']:.1f} s and -n 2 {s0['w2']:.1f} s before any check "

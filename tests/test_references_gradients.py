@@ -330,24 +330,35 @@ def test_jax_twins_keep_the_derivative_at_the_kinks_of_their_stable_forms():
 
 
 def test_label_shortcuts_give_the_full_formulas_bit_for_bit() -> None:
-    # the label paths gather before building full-size arrays; the numbers must be those of the
-    # written-out formulas: −log softmax(z)_y, and p − onehot(y) with p_y − 1 taken as −Σ_{c≠y} p_c
-    from lossguard.references._stable import label_log_softmax, log_softmax, onehot, softmax, take_label
+    # the label paths gather before building full-size arrays and reuse the exponentials; the
+    # numbers must be those of the written-out formulas: softmax = e^(x − m) / (1 + s),
+    # log softmax = (x − m) − log1p(s), −log softmax(z)_y, and p − onehot(y) with p_y − 1 taken
+    # as −Σ_{c≠y} p_c, whatever the memory layout of z
+    from lossguard.references._stable import (_shifted, label_log_softmax, log_softmax, onehot, softmax,
+                                              take_label)
 
     rng = np.random.default_rng(11)
-    for trial in range(60):
-        z = rng.normal(0.0, 10.0 ** rng.uniform(-3, 4), (9, 7))
+    for trial in range(80):
+        c = 7 if trial % 2 else 50
+        z = rng.normal(0.0, 10.0 ** rng.uniform(-3, 4), (9, c))
         if trial % 3 == 0:
             z[2] = z[2, 0]  # a row of ties
         if trial % 4 == 0:
-            z[0, 3] = np.inf  # an infinite logit: the special values must match too
-        y = rng.integers(0, 7, 9)
+            z[0, 3] = np.inf  # special values must match too
+        if trial % 5 == 0:
+            z[1] = -np.inf
+            z[4, 1] = np.nan
+        if trial % 2 == 0:
+            z = np.asfortranarray(z)  # column-major, as from some data frames
+        y = rng.integers(0, c, 9).astype(np.int32 if trial % 3 == 1 else np.int64)
         with np.errstate(all="ignore"):
-            want_ls = take_label(log_softmax(z), y)
-            p, t = softmax(z), onehot(y, 7)
-            others = np.sum(np.where(t > 0, 0.0, p), axis=-1, keepdims=True)
-            want_g = np.where(t > 0, -others, p)
-            got_ls, got_g, got_v = label_log_softmax(z, y), CE.per_example_grad(z, y), CE.per_example(z, y)
-        assert got_ls.tobytes() == want_ls.tobytes()
-        assert got_g.tobytes() == want_g.tobytes()
-        assert got_v.tobytes() == (-want_ls).tobytes()
+            _, d, s = _shifted(np.asarray(z, dtype=np.float64), -1)
+            want_p, want_all = np.exp(d) / (1.0 + s), d - np.log1p(s)
+            want_ls = take_label(want_all, y)
+            t = onehot(y, c)
+            others = np.sum(np.where(t > 0, 0.0, want_p), axis=-1, keepdims=True)
+            want_g = np.where(t > 0, -others, want_p)
+            got = (softmax(z), log_softmax(z), label_log_softmax(z, y), CE.per_example_grad(z, y),
+                   CE.per_example(z, y))
+        for g, w in zip(got, (want_p, want_all, want_ls, want_g, -want_ls)):
+            assert np.ascontiguousarray(g).tobytes() == np.ascontiguousarray(w).tobytes()

@@ -94,8 +94,11 @@ def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale:
     """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3).
 
     Args:
-        g: gradients (K, *S). v: directions (K, D, *S). scale: S, each case's largest |logit| (K,).
-        grad_scale: G, the size of one gradient term (K,) or a number. n: operations per element.
+        g: gradients (K, *S). v: directions (K, D, *S).
+        scale: S per case (K,), as :func:`~lossguard.checks.reference.case_scale` gives it (the
+            largest |logit|; 1 for probability inputs).
+        grad_scale: G, the size of one gradient term (K,) or a number (callers multiply it by the
+            largest |cotangent| when the gradient was taken with one). n: operations per element.
     Returns:
         (K, D) absolute allowances: the gradient's own rounding (first term) and the dot product's
         (second, m = the number of elements of a case).
@@ -136,8 +139,9 @@ def directional_pair(ctx: Context, tally: Tally, stack: CaseStack, what: str, sl
     """Compare an oracle's slopes with the finite differences and record the result in ``tally``.
 
     Where the loss is smooth along a direction, the slope must lie within the central estimate's
-    allowance plus the slope's own ``a_dot``; at a kink, between the one-sided estimates (with
-    their error bounds as margin).
+    allowance plus the slope's own ``a_dot``; at a kink, between the one-sided estimates, widened
+    by a margin of 2 · (forward error + backward error) + ``a_dot``. Directions that are neither
+    (the finite differences could not judge them) are not compared.
 
     Args:
         slope: the oracle's g·v (K, D). fd: the finite-difference estimates (K, D).

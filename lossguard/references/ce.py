@@ -150,9 +150,11 @@ def ce_per_example_grad(
     """
     z = f64(z)
     c = z.shape[-1]
-    if _is_labels(z, y) and inputs != "probabilities":
-        p = softmax(z)
-        lab = np.asarray(y, dtype=np.int64)[..., None]
+    labels = np.asarray(y)
+    if _is_labels(z, y) and inputs != "probabilities" and np.issubdtype(labels.dtype, np.integer) \
+            and labels.size and labels.min() >= 0 and labels.max() < c:
+        p = np.ascontiguousarray(softmax(z))  # row-major: the sums below add in the usual order
+        lab = labels.astype(np.int64)[..., None]
         np.put_along_axis(p, lab, 0.0, axis=-1)
         # p_y − 1 = −Σ_{c≠y} p_c: summing the others avoids the cancellation when p_y ≈ 1
         np.put_along_axis(p, lab, -np.sum(p, axis=-1, keepdims=True), axis=-1)
