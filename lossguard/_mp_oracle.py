@@ -12,8 +12,10 @@ the registry's own stable forms, so 40 significant digits suffice at every magni
 Cost: a dual number carries C tangents, so one example's gradient costs O(C²) operations (a
 second at C = 1000); its value alone costs O(C). :func:`settle_value` therefore evaluates in
 mpmath only the examples whose float64 value overflowed, and stops as soon as the case's value
-is known to exceed every float dtype; :func:`settle_grad_rows` takes the dual numbers only to
-the examples whose float64 gradient row is not finite.
+is known to exceed every float dtype; the others enter through an exact sum at C speed
+(:func:`_exact_sum`: 4 million binary examples in under a second, where mpmath's own ``fsum``
+took 80 s); :func:`settle_grad_rows` takes the dual numbers only to the examples whose float64
+gradient row is not finite.
 
 References:
     F. Johansson et al., mpmath: a Python library for arbitrary-precision floating-point
@@ -22,6 +24,7 @@ References:
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
@@ -277,12 +280,12 @@ def settle_value(spec: LossSpec, z: np.ndarray, y: np.ndarray, ell: np.ndarray, 
             for i, li in zip(hot, row_values(spec, z[hot], yy[hot], dps=dps)):
                 value[i] = float(_MP.mpf(float(w[i])) * li)
             return value
-        big_w = _MP.fsum(_MP.mpf(float(x)) for x in w)
+        big_w = _weighted_sum(w, np.ones_like(w))
         if reduction == "mean" and big_w == 0:  # every example ignored: 0/0, as the reference
             return float("nan")
         div = big_w if reduction == "mean" else _MP.one
-        fine = np.flatnonzero(live & np.isfinite(ell))
-        total = _MP.fsum(_MP.mpf(float(w[i])) * _MP.mpf(float(ell[i])) for i in fine)
+        fine = live & np.isfinite(ell)
+        total = _weighted_sum(w[fine], ell[fine])
         monotone = "nonnegative" in ref.properties  # every term ≥ 0: a partial sum bounds the total below
         # the float64 overflows to +inf first: they decide soonest whether the case fits
         for i in hot[np.argsort(-np.nan_to_num(ell[hot], nan=0.0), kind="stable")]:
@@ -290,6 +293,43 @@ def settle_value(spec: LossSpec, z: np.ndarray, y: np.ndarray, ell: np.ndarray, 
             if monotone and total / div > beyond:
                 return float("inf")
         return float(total / div)
+
+
+#: Binary exponent the terms of :func:`_exact_sum` are scaled by, so that a sum of millions of
+#: float64 values near the top of the range cannot overflow (2^-64 · 1.8e308 · 2^23 ≪ 1.8e308).
+_SCALE = 64
+
+
+def _exact_sum(x: np.ndarray) -> Any:
+    """Σ x for finite float64 ``x``, in mpmath, good to far more than 40 digits, at C speed.
+
+    Each term is scaled by 2^-64, which is exact unless it lands among the subnormals (below
+    2^-1022; such terms lose at most 2^-1074 each, 2^-1010 once scaled back: nothing a 40-digit
+    total of values that overflowed float64 can see). ``math.fsum`` returns the correctly rounded
+    sum of its terms; appending the negated result and summing again gives the correctly rounded
+    remainder, so three rounds carry the sum to about 160 bits (Shewchuk, "Adaptive precision
+    floating-point arithmetic and fast robust geometric predicates", Discrete & Computational
+    Geometry 18, 1997, is the algorithm inside ``math.fsum``).
+    """
+    terms = np.ldexp(np.asarray(x, dtype=np.float64), -_SCALE).tolist()  # x · 2^-64, exact (see above)
+    total = _MP.zero
+    for _ in range(3):
+        part = math.fsum(terms)
+        if part == 0.0:
+            break
+        total += _MP.mpf(part)
+        terms.append(-part)
+    return _MP.ldexp(total, _SCALE)
+
+
+def _weighted_sum(w: np.ndarray, x: np.ndarray) -> Any:
+    """Σ w_i x_i in mpmath: the x of each distinct weight summed by :func:`_exact_sum`, then
+    scaled by that weight (the weights are class weights, 1 or 0: few distinct values)."""
+    total = _MP.zero
+    for v in np.unique(w):
+        if v != 0.0:
+            total += _MP.mpf(float(v)) * _exact_sum(x[w == v])
+    return total
 
 
 def settle_grad_rows(spec: LossSpec, z: np.ndarray, y: np.ndarray, grad: np.ndarray, *, reduction: str,
