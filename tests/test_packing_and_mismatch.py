@@ -70,3 +70,33 @@ def test_mismatch_equals_its_plain_definition_with_special_values():
         got = (m.bad_elements, m.case_bad, m.case_ratio, m.case_abs, m.case_rel)
         for x, y in zip(got, want):
             assert np.array_equal(x, y, equal_nan=True), trial
+
+
+def test_a_replay_with_infinities_and_nans_runs_and_gives_the_same_arrays() -> None:
+    # masked logits are −inf and a broken loss may be fed nan: repr writes them as bare names,
+    # which a pasted line cannot evaluate; the replay writes np.inf and np.nan instead
+    from lossguard.checks._compare import replay
+
+    spec = declare(lambda z, y: z, kind="binary")
+    z = np.array([[1.5, -np.inf, np.inf], [np.nan, 0.1 + 0.2, -0.0]])
+    y = np.array([[1.0, 0.0, 1.0], [0.0, 1.0, 0.5]])
+    seen: list[tuple[np.ndarray, np.ndarray]] = []
+    exec(replay(spec, z, y), {"np": np, "loss": lambda a, b: seen.append((a, b))})  # noqa: S102 - our own line
+    a, b = seen[0]
+    assert a.tobytes() == z.tobytes() and b.tobytes() == y.tobytes()  # bit for bit, −0.0 and 0.1 + 0.2 included
+
+
+def test_a_large_case_is_named_not_written_out() -> None:
+    # one (4096, 1000) case written out made a 74 MB replay line; past INLINE_VALUES the line calls
+    # loss(z, y) and says what z and y are
+    from lossguard.checks._compare import INLINE_VALUES, replay
+
+    spec = declare(lambda z, y, margin=0.0: z.sum() + margin, kind="categorical", params={"margin": 0.5})
+    z, y = np.zeros((INLINE_VALUES // 10, 10)), np.zeros(INLINE_VALUES // 10, dtype=np.int64)
+    line = replay(spec, z, y)
+    assert len(line) < 400 and "(1000, 10)" in line and "int64 (1000,)" in line
+    seen: list[tuple[object, ...]] = []
+    exec(line, {"z": z, "y": y, "loss": lambda *a, **k: seen.append((a, k))})  # noqa: S102 - our own line
+    assert seen[0][0][0] is z and seen[0][1] == {"margin": 0.5}
+    small = replay(spec, z[:5], y[:5])
+    assert small.startswith("loss(np.array([[0.0,")  # small cases are still written out

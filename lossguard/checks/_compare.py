@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable
 from typing import Any
 
@@ -24,14 +25,41 @@ def fmt(a: Any, digits: int = 6) -> str:
         return np.array2string(arr, separator=", ")
 
 
+#: Most values a replay line writes out; a larger case is named by its shapes instead (at
+#: (4096, 1000) logits one written-out case made a 74 MB line, three per failed check).
+INLINE_VALUES = 10_000
+
+
+def _literal(a: np.ndarray) -> str:
+    """``a`` as a Python list literal that numpy reads back exactly (repr of a float round-trips);
+    infinities and nans, which repr writes as bare names, become ``np.inf`` and ``np.nan``."""
+    text = repr(np.asarray(a).tolist())
+    text = re.sub(r"(?<![\w.])(-?)inf\b", r"\1np.inf", text)
+    return re.sub(r"(?<![\w.])nan\b", "np.nan", text)
+
+
 def replay(spec: LossSpec, z: np.ndarray, y: np.ndarray, dtype: str = "float64") -> str:
-    """A copy-pasteable call reproducing one case."""
+    """A copy-pasteable call reproducing one case.
+
+    Cases of up to :data:`INLINE_VALUES` values are written out; a larger one is called as
+    ``loss(z, y)`` with a comment giving the shapes and where the arrays are (the example's
+    ``predictions`` and ``targets``, in the result and in the JSON report).
+
+    Example:
+        >>> from lossguard import declare
+        >>> spec = declare(lambda z, y: z.sum(), kind="binary")
+        >>> replay(spec, np.array([1.5, -np.inf]), np.array([1.0, 0.0]))[:60]
+        "loss(np.array([1.5, -np.inf], dtype='float64'), np.array([1."
+    """
+    z, y = np.asarray(z), np.asarray(y)
     params = "".join(f", {k}={v!r}" for k, v in spec.params.items())
-    ydt = "" if np.issubdtype(np.asarray(y).dtype, np.integer) else f", dtype='{dtype}'"
-    return (
-        f"loss(np.array({np.asarray(z).tolist()!r}, dtype='{dtype}'), "
-        f"np.array({np.asarray(y).tolist()!r}{ydt}){params})   # loss = {spec.name}"
-    )
+    y_int = np.issubdtype(y.dtype, np.integer)
+    if z.size + y.size > INLINE_VALUES:
+        return (f"loss(z, y{params})   # loss = {spec.name}; z: {dtype} {z.shape}, y: "
+                f"{y.dtype.name if y_int else dtype} {y.shape}, too large to write out: they are this "
+                f"example's predictions and targets (in the result, and in the JSON report)")
+    ydt = "" if y_int else f", dtype='{dtype}'"
+    return f"loss(np.array({_literal(z)}, dtype='{dtype}'), np.array({_literal(y)}{ydt}){params})   # loss = {spec.name}"
 
 
 def _compare(g: np.ndarray, e: np.ndarray, a: np.ndarray,
