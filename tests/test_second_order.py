@@ -18,6 +18,20 @@ def _second(loss, **kw):
     return run(declare(loss, kind="categorical", **kw), effort="quick", only=["second-order"]).check("second-order")
 
 
+def _stopped_backward():
+    @jax.custom_vjp
+    def f(z, y):
+        return _ce(z, y)
+
+    def bwd(res, cot):
+        z, y = res
+        p = jax.lax.stop_gradient(jax.nn.softmax(z))  # right value, but its derivative is lost
+        return cot * (p - jax.nn.one_hot(y, z.shape[-1], dtype=z.dtype)) / z.shape[0], None
+
+    f.defvjp(lambda z, y: (f(z, y), (z, y)), bwd)
+    return lambda z, y: f(z, y)
+
+
 def test_correct_loss_passes_and_a_convex_reference_shows_no_negative_curvature():
     c = _second(_ce, reference="categorical_ce")
     assert c.verdict == "pass", c.summary
@@ -33,17 +47,7 @@ def test_it_is_opt_in():
 
 
 def test_a_backward_pass_right_in_value_but_not_differentiable_fails():
-    @jax.custom_vjp
-    def f(z, y):
-        return _ce(z, y)
-
-    def bwd(res, cot):
-        z, y = res
-        p = jax.lax.stop_gradient(jax.nn.softmax(z))  # right value, but its derivative is lost
-        return cot * (p - jax.nn.one_hot(y, z.shape[-1], dtype=z.dtype)) / z.shape[0], None
-
-    f.defvjp(lambda z, y: (f(z, y), (z, y)), bwd)
-    c = _second(lambda z, y: f(z, y))
+    c = _second(_stopped_backward())
     assert c.verdict == "fail" and "H v differs from finite differences" in c.summary
     assert "not differentiable" in c.hint
     assert c.worst[0].abs_err > c.worst[0].allowance
@@ -89,20 +93,6 @@ def test_evaluator_hvp_matches_the_closed_form_softmax_hessian():
         tol = 2 * gamma(op_count(n, want.shape[1]), "float64") * (1 + np.abs(stack.predictions[k]).max())
         assert np.max(np.abs(hv[k] - want)) <= tol * np.abs(want).max()
     assert g.shape == stack.predictions.shape
-
-
-def _stopped_backward():
-    @jax.custom_vjp
-    def f(z, y):
-        return _ce(z, y)
-
-    def bwd(res, cot):
-        z, y = res
-        p = jax.lax.stop_gradient(jax.nn.softmax(z))  # right value, but its derivative is lost
-        return cot * (p - jax.nn.one_hot(y, z.shape[-1], dtype=z.dtype)) / z.shape[0], None
-
-    f.defvjp(lambda z, y: (f(z, y), (z, y)), bwd)
-    return lambda z, y: f(z, y)
 
 
 def test_large_cases_are_judged_one_at_a_time_with_the_same_findings(monkeypatch):
