@@ -304,8 +304,8 @@ def _exact_sum(x: np.ndarray) -> Any:
     """Σ x for finite float64 ``x``, in mpmath, good to far more than 40 digits, at C speed.
 
     Each term is scaled by 2^-64, which is exact unless it lands among the subnormals (below
-    2^-1022; such terms lose at most 2^-1074 each, 2^-1010 once scaled back: nothing a 40-digit
-    total of values that overflowed float64 can see). ``math.fsum`` returns the correctly rounded
+    2^-1022); such a term loses at most half their spacing, 2^-1075, which is 2^-1011 once scaled
+    back: nothing a 40-digit total of values that overflowed float64 can see. ``math.fsum`` returns the correctly rounded
     sum of its terms; appending the negated result and summing again gives the correctly rounded
     remainder, so three rounds carry the sum to about 160 bits (Shewchuk, "Adaptive precision
     floating-point arithmetic and fast robust geometric predicates", Discrete & Computational

@@ -163,8 +163,9 @@ def _judge(ctx: Context, stack: CaseStack, found: dict, c: np.ndarray, scale: np
 
 
 #: Elements per block of the Richardson tables: each table holds about ten entries per element, so a
-#: block of 2^16 keeps them in cache; on whole (4096, 1000) gradients the same tables took 4× as
-#: long (measured here), with the same numbers bit for bit (every step is element by element).
+#: block of 2^16 keeps its arrays a few megabytes instead of gigabytes; on whole (4096, 1000)
+#: gradients the same tables took 4× as long (measured here), with the same numbers bit for bit
+#: (every step is element by element).
 BLOCK = 1 << 16
 
 
