@@ -59,7 +59,7 @@ from ._branch_points import THRESHOLDS, branch_points, packed_branch_points
 from .cases import CaseStack
 
 __all__ = ["LEVELS", "CHUNK_BYTES", "THRESHOLDS", "Estimate", "Directional", "richardson", "consistent",
-           "directional", "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "perturbed", "point_stacks",
+           "directional", "snap", "quantise", "unit_directions", "base_steps", "step_ladder", "point_stacks",
            "branch_points", "packed_branch_points", "complex_step"]
 
 #: Step levels per direction: h0, h0/2, h0/4, h0/8.
@@ -309,32 +309,14 @@ def step_ladder(h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
     return h0[None] * 2.0 ** -np.arange(levels).reshape((levels,) + (1,) * np.ndim(h0))
 
 
-def perturbed(z: np.ndarray, v: np.ndarray, h0: np.ndarray, levels: int = LEVELS) -> np.ndarray:
-    """Every point z ± h_l v, shape (K, D, 2, J, *S): sign on axis 2 (+ first), level on axis 3.
-
-    Each point is written in place into one C-ordered array, so reshaping it to a stack of
-    points is a view (no full-size temporaries: at (4096, 1000) one point is 32 MB).
-    """
-    steps = step_ladder(h0, levels)  # (J, K, D)
-    k, d = v.shape[:2]
-    out = np.empty((k, d, 2, levels) + v.shape[2:])
-    for i in range(k):
-        for j in range(d):
-            for a, sign in enumerate((1.0, -1.0)):
-                for level in range(levels):
-                    o = out[i, j, a, level]
-                    np.multiply(v[i, j], sign * steps[level, i, j], out=o)  # s·v, then z + s·v in place
-                    o += z[i]
-    return out
-
-
 def point_stacks(stack: CaseStack, v: np.ndarray, h0: np.ndarray,
                  levels: int = LEVELS) -> Iterator[tuple[np.ndarray, CaseStack]]:
     """Stacks of every point z ± h_l v (each case's targets repeated), a few points at a time.
 
     Yields ``(cases, points)``: the case index of each point and a stack of points, in the order
-    of :func:`perturbed` flattened, so that the values of all yielded stacks concatenated
-    reshape to (K, D, 2, J, …). Every stack fits :data:`CHUNK_BYTES` (all points at once at the
+    (case, direction, sign (+ first), level), so that the values of all yielded stacks
+    concatenated reshape to (K, D, 2, J, …). Each point is z + s·v computed as (s·v) + z, in
+    place. Every stack fits :data:`CHUNK_BYTES` (all points at once at the
     menu's shapes) and lives in one buffer that the next stack overwrites: consume each before
     asking for the next. Reusing the buffer spares the page faults of a fresh array per chunk,
     which at (4096, 1000) cost more than the loss evaluations themselves.

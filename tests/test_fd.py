@@ -7,8 +7,17 @@ import pytest
 
 from lossguard import _fd
 from lossguard._taylor import taylor_orders
+from lossguard.cases import CaseStack, Cell
 
 U = np.finfo(np.float64).eps / 2  # unit roundoff of float64 (IEEE 754)
+
+
+def _points(z, v, h0):
+    """Every point the gradient check evaluates, from the library's own stream: (K, D, 2, J, *S)."""
+    cell = Cell(*z.shape[1:]) if z.ndim == 3 else Cell(z.shape[1], None)
+    stack = CaseStack(z, np.zeros(z.shape[:2], dtype=np.int64), cell)
+    pts = np.concatenate([p.predictions.copy() for _, p in _fd.point_stacks(stack, v, h0)])
+    return pts.reshape(v.shape[:2] + (2, _fd.LEVELS) + z.shape[1:])
 
 
 def _table(fn, x, levels=_fd.LEVELS, h0=2.0**-5, noise=None):
@@ -76,7 +85,7 @@ def test_snapped_points_are_exact():
     v, _ = _fd.unit_directions(rng, len(z), (4,), 3)
     h0 = _fd.base_steps(z, v, "logits")
     v = _fd.quantise(z, v, h0)
-    pts = _fd.perturbed(z, v, h0)
+    pts = _points(z, v, h0)
     steps = _fd.step_ladder(h0)  # (J, K, D)
     exact = np.moveaxis(steps, 0, -1)[..., None] * v[:, :, None]  # h_l v, exact (powers of two)
     moved = pts[:, :, 0] - z[:, None, None]
@@ -106,7 +115,7 @@ def test_probability_steps_stay_inside_the_unit_interval():
     v, _ = _fd.unit_directions(rng, 3, (2, 4), 2)
     v = v * np.minimum(p, 1 - p)[:, None]
     h0 = _fd.base_steps(p, v, "probabilities")
-    pts = _fd.perturbed(p, v, h0)
+    pts = _points(p, v, h0)
     assert np.all(pts > 0) and np.all(pts < 1)
     assert np.all(np.log2(h0) == np.round(np.log2(h0)))  # powers of two
 

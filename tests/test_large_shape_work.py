@@ -101,8 +101,10 @@ def test_finite_difference_points_stream_through_one_buffer_within_the_chunk_bud
         seen.append(pts.predictions.copy())
         cases.append(idx)
         assert np.array_equal(pts.targets, stack.targets[idx])
-    expected = fd.perturbed(z, v, h0).reshape((-1, 6, 5))
-    assert np.array_equal(np.concatenate(seen), expected)  # bit for bit, in perturbed's order
+    # the definition written out at once: z + s·v for s = ±h_l, sign before level, (s·v) rounded first
+    s = np.moveaxis(fd.step_ladder(h0), 0, -1)[:, :, None, :] * np.array([1.0, -1.0])[None, None, :, None]
+    expected = (s[..., None, None] * v[:, :, None, None] + z[:, None, None, None]).reshape((-1, 6, 5))
+    assert np.array_equal(np.concatenate(seen), expected)  # bit for bit, in (case, direction, sign, level) order
     assert np.array_equal(np.concatenate(cases), np.repeat(np.arange(3), 3 * 2 * fd.LEVELS))
 
 

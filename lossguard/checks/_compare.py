@@ -31,7 +31,9 @@ INLINE_VALUES = 10_000
 
 
 def _literal(a: np.ndarray) -> str:
-    """``a`` as a Python list literal that numpy reads back exactly (repr of a float round-trips);
+    """``a`` as a Python list literal that numpy reads back exactly (Python's repr of a float is
+    the shortest string that reads back to the same value, since Python 3.1: recalled from
+    memory, and held by ``test_a_replay_with_infinities_and_nans_runs_and_gives_the_same_arrays``);
     infinities and nans, which repr writes as bare names, become ``np.inf`` and ``np.nan``."""
     text = repr(np.asarray(a).tolist())
     text = re.sub(r"(?<![\w.])(-?)inf\b", r"\1np.inf", text)
