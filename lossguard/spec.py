@@ -19,8 +19,10 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
+from ._range import DEFAULT_MAX_LOGIT, describe_max_logit, parse_dtypes, parse_max_logit
 from ._suggest import bad_value, did_you_mean
 from .errors import SpecError
+from .tolerance import DTYPES
 
 __all__ = ["KINDS", "INPUTS", "REDUCTIONS", "LossSpec", "declare"]
 
@@ -48,6 +50,9 @@ class LossSpec:
     skip: tuple[str, ...] = ()
     expect: tuple[str, ...] = ()
     name: str = ""
+    #: the operating range: dtypes the loss is used in, and the largest |logit| it must handle
+    dtypes: tuple[str, ...] = DTYPES
+    max_logit: float = DEFAULT_MAX_LOGIT
 
     @property
     def softmax_type(self) -> bool:
@@ -72,6 +77,8 @@ class LossSpec:
             "reduction": self.reduction,
             "skip": list(self.skip),
             "expect": list(self.expect),
+            "dtypes": list(self.dtypes),
+            "max_logit": describe_max_logit(self.max_logit),
         }
 
 
@@ -124,6 +131,8 @@ def declare(
     skip: tuple[str, ...] | list[str] = (),
     expect: tuple[str, ...] | list[str] = (),
     name: str | None = None,
+    dtypes: str | tuple[str, ...] | list[str] = DTYPES,
+    max_logit: float | str = DEFAULT_MAX_LOGIT,
 ) -> LossSpec:
     """Declare what a loss is, so that a battery of checks can be run against it.
 
@@ -140,6 +149,11 @@ def declare(
         reduction: how a scalar output was reduced: ``"mean"`` (default) or ``"sum"``.
         skip: default checks to turn off. expect: optional checks to turn on.
         name: display name (defaults to ``module:function``).
+        dtypes: the precisions the loss is used in (default all four; ``"float32,float64"`` for
+            a loss never run in 16 bits). Others are not judged.
+        max_logit: the largest |logit| the loss must handle (default 1e3, common practice; see
+            :mod:`lossguard._range`), or ``"full"`` for the whole format. Beyond it the checks
+            report what they see as information, not as failures.
 
     Returns:
         A frozen :class:`LossSpec`.
@@ -164,6 +178,8 @@ def declare(
         raise SpecError(
             bad_value("reduction", reduction, "mean or sum", did_you_mean(reduction, REDUCTIONS))
         )
+    dtypes = parse_dtypes(dtypes)
+    max_logit = parse_max_logit(max_logit)
     params = dict(params or {})
     for key in params:
         if not isinstance(key, str) or not key.isidentifier():
@@ -220,4 +236,6 @@ def declare(
         skip=tuple(skip),
         expect=tuple(expect),
         name=name or _callable_name(loss),
+        dtypes=dtypes,
+        max_logit=max_logit,
     )

@@ -15,13 +15,14 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .._budget import case_count
+from .._range import Beyond, case_reach, judged_dtypes
 from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, random_stack, shape_menu, target_domain
 from ..evaluate import Evaluator
 from ..result import CheckResult
 from ..spec import LossSpec
 from ..tolerance import DTYPES
 
-__all__ = ["Check", "Context", "EAGER_DTYPE", "always", "never", "only", "planned"]
+__all__ = ["Check", "Context", "EAGER_DTYPE", "always", "never", "only", "planned", "within"]
 
 #: The dtype of plain (not jitted) calls. A plain call compiles every primitive of the loss once
 #: per (shape, dtype), so every check that makes them uses this dtype and ``Context.eager_cell``.
@@ -76,11 +77,22 @@ class Check:
     compiles: Callable[[Context], list[tuple[str, str, Cell]]] | None = None
 
 
+def within(ctx: Context) -> str:
+    """", |z| ≤ 1e+03" for a summary: the declared range of logits (nothing for probabilities)."""
+    if ctx.spec.inputs == "probabilities":
+        return ""
+    from .._range import describe_max_logit
+
+    return "" if np.isinf(ctx.spec.max_logit) else f", |z| ≤ {describe_max_logit(ctx.spec.max_logit)}"
+
+
 def planned(dtypes: tuple[str, ...] = DTYPES, op: str = "vg") -> Callable[[Context], list[tuple[str, str, Cell]]]:
     """A ``compiles`` rule: ``op`` in each of ``dtypes`` at the shapes of ``Context.cells_for``."""
 
     def rule(ctx: Context) -> list[tuple[str, str, Cell]]:
-        return [(op, d, cell) for d in dtypes for cell in ctx.cells_for(d)]
+        # float64 is the oracle's precision: compiled whether or not it is declared
+        keep = [d for d in dtypes if d == "float64" or d in ctx.spec.dtypes]
+        return [(op, d, cell) for d in keep for cell in ctx.cells_for(d)]
 
     return rule
 
@@ -119,6 +131,18 @@ class Context:
         if dtype == "float64" or self.effort == "thorough":
             return cells
         return cells[-1:]
+
+    def judged_dtypes(self, wanted: tuple[str, ...] = DTYPES) -> tuple[str, ...]:
+        """The dtypes of ``wanted`` inside the declared operating range (``spec.dtypes``)."""
+        return judged_dtypes(self.spec.dtypes, wanted)
+
+    def beyond(self) -> Beyond:
+        """A fresh record of what a check sees past the declared largest |logit|."""
+        return Beyond(self.spec.max_logit)
+
+    def reach(self, predictions: np.ndarray) -> np.ndarray:
+        """Per case: the largest |logit| (0 for probabilities), compared with ``spec.max_logit``."""
+        return case_reach(self.spec.inputs, predictions)
 
     @property
     def eager_cell(self) -> Cell:

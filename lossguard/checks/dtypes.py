@@ -37,7 +37,8 @@ from ..evaluate import NoGradient
 from ..ladders import magnitudes
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
-from ._base import Check, Context, planned
+from .._range import Beyond
+from ._base import Check, Context, planned, within
 from ._compare import examples_from, mismatch
 from .finite import fill_to, on_grid, own_float64, per_case_finite, reduced_fits, reference_batch
 from .reference import case_scale, gradient_term_scale
@@ -89,9 +90,9 @@ def _oracle(ctx: Context, stack: CaseStack) -> tuple[np.ndarray, np.ndarray | No
 
 
 def _compare(ctx: Context, stack: CaseStack, dtype: str, exp_v: np.ndarray, exp_g: np.ndarray | None,
-             ) -> tuple[np.ndarray, list[Example], str]:
+             beyond: Beyond | None = None) -> tuple[np.ndarray, list[Example], str]:
     """Per case failed?, the worst examples, and the rule used (cases whose true value does not
-    fit the dtype are not judged)."""
+    fit the dtype are not judged; cases past the declared |logit| go to ``beyond``)."""
     ev, k = ctx.evaluator, len(stack)
     try:
         got_v, got_g = ev.value_and_grad(stack, dtype)
@@ -99,11 +100,15 @@ def _compare(ctx: Context, stack: CaseStack, dtype: str, exp_v: np.ndarray, exp_
         got_v, got_g = ev.values(stack, dtype), None
     comp = ev.computed_dtype(dtype)
     fits = reduced_fits(ctx, exp_v, k, dtype, stack.cell) & per_case_finite(exp_v, k)
+    reach = ctx.reach(stack.predictions)
+    inside = np.ones(k, bool) if beyond is None else beyond.inside(reach)
     scale = case_scale(ctx, stack.predictions)
     n = op_count(stack.cell.n, stack.cell.c or stack.cell.d or 1)
     a_v = rounding_allowance(exp_v, scale, dtype=comp, n_ops=n)
     m_v = mismatch(got_v, exp_v, a_v.atol)
     m_v.case_bad &= fits
+    broke = m_v.case_bad.copy()
+    m_v.case_bad &= inside
     bad = m_v.case_bad.copy()
     found = examples_from(m_v, ctx.spec, stack, f"value in {dtype}", dtype=dtype)
     rule = f"value: {a_v.rule}"
@@ -112,9 +117,13 @@ def _compare(ctx: Context, stack: CaseStack, dtype: str, exp_v: np.ndarray, exp_
                                  grad_scale=gradient_term_scale(ctx, stack.targets))
         m_g = mismatch(got_g, exp_g, a_g.atol)
         m_g.case_bad &= fits & per_case_finite(exp_g, k)
+        broke |= m_g.case_bad
+        m_g.case_bad &= inside
         bad |= m_g.case_bad
         found += examples_from(m_g, ctx.spec, stack, f"gradient in {dtype}", dtype=dtype)
         rule += f"; gradient: {a_g.rule}"
+    if beyond is not None:
+        beyond.add(dtype, reach, broke, ["beyond the error model"] * k)
     return bad, found, rule
 
 
@@ -127,7 +136,14 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
     worst: list[Example] = []
     rules: set[str] = set()
     oracle = ""
-    low = tuple(d for d in dtypes if spec.reference is not None or d != "float64")
+    low = tuple(d for d in ctx.judged_dtypes(dtypes) if spec.reference is not None or d != "float64")
+    left_out = [d for d in dtypes if d not in ctx.judged_dtypes(dtypes)]
+    large = large and "float16" in low
+    beyond = ctx.beyond()
+    if not low:
+        return CheckResult(name="dtypes", verdict="skip", seconds=time.perf_counter() - t0,
+                           summary=(f"nothing to judge: no declared dtype below float64 "
+                                    f"(dtypes={','.join(ctx.spec.dtypes)}) and no reference for float64"))
     for cell in ctx.cells:
         here = [d for d in low if cell in ctx.cells_for(d)]
         if not here:
@@ -135,9 +151,9 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
         stack = common_stack(ctx, cell)
         exp_v, exp_g, oracle = _oracle(ctx, stack)
         for dtype in here:
-            bad, found, rule = _compare(ctx, stack, dtype, exp_v, exp_g)
+            bad, found, rule = _compare(ctx, stack, dtype, exp_v, exp_g, beyond)
             rules.add(rule)
-            total += len(stack)
+            total += int(beyond.inside(ctx.reach(stack.predictions)).sum())
             failed += int(bad.sum())
             per_dtype[dtype] = per_dtype.get(dtype, 0) + int(bad.sum())
             worst += found[:1]
@@ -154,17 +170,28 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
         summary = (f"results beyond the dtype's error model on {failed} of {total} cases ({counts}); "
                    f"first: {worst[0].what} [{worst[0].note}]")
     else:
-        summary = (f"{', '.join(low)} agree with {oracle} on {total} cases"
+        summary = (f"{', '.join(low)} agree with {oracle} on {total} cases{within(ctx)}"
                    + (f", including a {LARGE_BATCH}-example batch in float16" if large else ""))
+    if left_out:
+        summary += f"; {', '.join(left_out)} not declared (dtypes=), not tried"
+    if beyond.note("within the error model"):
+        summary += "; " + beyond.note("within the error model")
+    only64 = failed and all(d == "float64" for d, n in per_dtype.items() if n)
     return CheckResult(
         name="dtypes", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
         allowance=f"oracle: {oracle}; " + "; ".join(sorted(rules)), worst=worst[:4],
-        hint=("low precision broke where float64 did not: accumulate sums in float32 (jnp.mean does), "
-              "keep clipping constants representable in the dtype (1 − 1e-7 is 1 in bfloat16), and "
-              "work in log space"),
-        details={"failed_per_dtype": per_dtype, "large_batch": LARGE_BATCH},
+        hint=(_HINT_FLOAT64 if only64 else _HINT_LOW),
+        details={"failed_per_dtype": per_dtype, "large_batch": LARGE_BATCH, "beyond_range": beyond.to_dict()},
         seconds=time.perf_counter() - t0,
     )
+
+
+_HINT_LOW = ("low precision broke where float64 did not: accumulate sums in float32 (jnp.mean does), "
+             "keep clipping constants representable in the dtype (1 − 1e-7 is 1 in bfloat16), and "
+             "work in log space")
+_HINT_FLOAT64 = ("float64 itself is off the reference by more than rounding explains: a formula that "
+                 "differs from the reference by a small term, constants held in float32 inside a float64 "
+                 "call, or a convention that differs (declare the reference the loss really implements)")
 
 
 def _run(ctx: Context) -> CheckResult:
@@ -174,7 +201,8 @@ def _run(ctx: Context) -> CheckResult:
 def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:
     """The shapes of the common stacks in every dtype, and the large batch in float16."""
     c0 = ctx.cells[0]
-    return planned(DTYPES)(ctx) + [("vg", "float16", Cell(LARGE_BATCH, c0.c, None))]
+    big = [("vg", "float16", Cell(LARGE_BATCH, c0.c, None))] if "float16" in ctx.spec.dtypes else []
+    return planned(DTYPES)(ctx) + big
 
 
 CHECK = Check(

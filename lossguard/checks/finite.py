@@ -64,7 +64,7 @@ from ..evaluate import NoGradient
 from ..ladders import EDGE_STEPS, approach, flush_subnormals, has_subnormals, largest_finite, smallest_normal
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
-from ._base import Check, Context, planned
+from ._base import Check, Context, planned, within
 from ._compare import replay
 from ._extremes import ACCUMULATOR, LEAST_CASES, STACK_SIZE, extreme_stack, fill_to, on_grid
 from ._reference_batch import reduce_rows, reference_batch, reference_rows
@@ -280,6 +280,9 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
     found: dict[str, list[Example]] = {}
     rules: set[str] = set()
     saw_grad = ev.has_gradient
+    beyond = ctx.beyond()
+    left_out = [d for d in dtypes if d not in ctx.judged_dtypes(dtypes)]
+    dtypes = ctx.judged_dtypes(dtypes)
     for dtype in dtypes:
         for cell in ctx.cells_for(dtype):
             stack = extreme_stack(ctx, cell, dtype)
@@ -291,15 +294,22 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
             fin_v, fin_g = per_case_finite(vals, k), per_case_finite(grads, k)
             # a finite result needs no oracle: ask it only about the cases that came out non-finite
             idx = np.flatnonzero(~(fin_v & fin_g))
+            inside = beyond.inside(ctx.reach(stack.predictions))
             bad_v, bad = np.zeros(k, bool), np.zeros(k, bool)
             if idx.size:
                 need = finite_oracle(ctx, stack.take(idx), dtype)
                 rules |= need.rules
                 bad_v[idx] = need.value & ~fin_v[idx]
                 bad[idx] = bad_v[idx] | (need.grad & ~fin_g[idx])
-                unjudged += int((~need.judged).sum())
-                exempt += int((need.judged & ~need.value).sum())
-            total += k
+                unjudged += int((~need.judged & inside[idx]).sum())
+                exempt += int((need.judged & ~need.value & inside[idx]).sum())
+            # past the declared |logit| a break is information, not a failure
+            beyond.add(dtype, ctx.reach(stack.predictions), bad,
+                       [_cause(vals[i], None if grads is None else grads[i], bad_v[i]) if bad[i] else ""
+                        for i in range(k)])
+            bad_v &= inside
+            bad &= inside
+            total += int(inside.sum())
             failed += int(bad.sum())
             per_dtype[dtype] = per_dtype.get(dtype, 0) + int(bad.sum())
             for i in np.flatnonzero(bad)[:1]:
@@ -319,9 +329,13 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
         summary = (f"non-finite {what} on {failed} of {total} cases where the true value is finite and "
                    f"representable ({counts}); first: {first.what} at {first.note}")
     else:
-        summary = f"finite {what} on all {total - unjudged} judged cases ({', '.join(dtypes)})"
+        summary = f"finite {what} on all {total - unjudged} judged cases ({', '.join(dtypes)}{within(ctx)})"
     if unjudged:
         summary += f"; {unjudged} cases had no oracle (declare a reference to judge them)"
+    if left_out:
+        summary += f"; {', '.join(left_out)} not declared (dtypes=), not tried"
+    if beyond.note():
+        summary += "; " + beyond.note()
     return CheckResult(
         name="finite", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
         allowance="exact: finite wherever the true value is finite and representable; "
@@ -330,9 +344,16 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
         hint=("an intermediate overflowed or a log met 0: use log-sum-exp with max subtraction, "
               "log_softmax, log σ(x) = −softplus(−x), and where-guards that keep both branches finite"),
         details={"failed_per_dtype": per_dtype, "cases_without_oracle": unjudged,
-                 "cases_where_true_value_not_representable": exempt},
+                 "cases_where_true_value_not_representable": exempt, "beyond_range": beyond.to_dict()},
         seconds=time.perf_counter() - t0,
     )
+
+
+def _cause(value: np.ndarray, grad: np.ndarray | None, in_value: bool) -> str:
+    """What came out non-finite, in a few words: "value is inf", "gradient has nan"."""
+    a = np.asarray(value if in_value or grad is None else grad, dtype=np.float64)
+    kind = "nan" if np.isnan(a).any() else "inf"
+    return f"value is {kind}" if in_value else f"gradient has {kind}"
 
 
 def _run(ctx: Context) -> CheckResult:

@@ -198,7 +198,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
 
     if ev.output == "per_example":
         bad |= _row_leaks(ctx, tally, stack, out, scale, big_g, n, tag)
-    if ev.has_autodiff and stack.cell in ctx.cells_for("float32"):
+    if ev.has_autodiff and stack.cell in ctx.cells_for("float32") and "float32" in ctx.spec.dtypes:
         bad |= _float32(ctx, tally, stack, c, scale, big_g * cmax, n, ~bad)
     tally.bad += int(bad.sum())
 
@@ -340,7 +340,7 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
 def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:
     """float64 value-and-gradient at every cell, float32 at its cells, forward mode at the last."""
     return ([("vg", "float64", cell) for cell in ctx.cells] + [("jvp", "float64", ctx.cells[-1])]
-            + [("vg", "float32", cell) for cell in ctx.cells_for("float32")])
+            + [("vg", "float32", cell) for cell in ctx.cells_for("float32") if "float32" in ctx.spec.dtypes])
 
 
 CHECK = Check(

@@ -124,7 +124,7 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
     """The check on the given dtypes (default: float32 and float64 at quick effort, else all)."""
     t0 = time.perf_counter()
     spec, ev = ctx.spec, ctx.evaluator
-    dtypes = dtypes or (("float32", "float64") if ctx.effort == "quick" else DTYPES)
+    dtypes = ctx.judged_dtypes(dtypes or (("float32", "float64") if ctx.effort == "quick" else DTYPES)) or ("float64",)
     total = failed = skipped = 0
     worst: list[Example] = []
     oracle_name = ""

@@ -10,7 +10,9 @@ from .._suggest import bad_value
 from ..errors import SpecError
 from ..loading import load_target
 from ..options import add_to_argparse
+from .._range import DEFAULT_MAX_LOGIT
 from ..spec import INPUTS, KINDS, LossSpec, declare
+from ..tolerance import DTYPES
 
 __all__ = ["add_target_options", "parse_params", "spec_from_args"]
 
@@ -27,6 +29,11 @@ def add_target_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--grad", metavar="TARGET", help="closed-form gradient w.r.t. the predictions")
     parser.add_argument("--skip", action="append", default=[], metavar="NAME", help="turn a default check off")
     parser.add_argument("--expect", action="append", default=[], metavar="NAME", help="turn an optional check on")
+    parser.add_argument("--dtypes", default=",".join(DTYPES), metavar="LIST",
+                        help="the precisions the loss is used in, comma-separated (default: all four)")
+    parser.add_argument("--max-logit", default=f"{DEFAULT_MAX_LOGIT:g}", metavar="X",
+                        help=f"the largest |logit| the loss must handle (default {DEFAULT_MAX_LOGIT:g}, common "
+                             "practice), or 'full' for the whole format; beyond it results are information")
     add_to_argparse(parser)
 
 
@@ -51,4 +58,5 @@ def spec_from_args(args: argparse.Namespace, target: str) -> LossSpec:
         loss, kind=args.kind, inputs=args.inputs, params=parse_params(args.param),
         reference=args.reference, ignore_label=args.ignore_label, grad=grad, classes=args.classes,
         reduction=args.reduction, skip=args.skip, expect=args.expect, name=target,
+        dtypes=args.dtypes, max_logit=args.max_logit,
     )
