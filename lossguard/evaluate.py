@@ -18,7 +18,8 @@ from .adapters.numpy_loss import NumpyAdapter
 from .cases import CaseStack, Cell, random_stack, shape_menu
 from .errors import LossCallError
 from .spec import LossSpec
-from .tolerance import DTYPES, unit_roundoff
+from ._precision import EVIDENCE, describe, grid_of, judged_precision, lower, why_not_traced
+from .tolerance import DTYPES
 
 __all__ = ["Evaluator", "NoGradient"]
 
@@ -43,6 +44,9 @@ class Evaluator:
         self.output = "scalar"
         self.reduction = spec.reduction
         self._user_grad: NumpyAdapter | None = None
+        #: why JAX could not trace the loss (one line), when it fell back to plain calls
+        self.untraced = ""
+        self._grid: str | None | bool = False  # the rounding probe's answer; False: not yet probed
         self._prepare()
 
     # -- probing -----------------------------------------------------------------------------
@@ -68,6 +72,7 @@ class Evaluator:
         else:
             self.adapter = NumpyAdapter(spec.loss, spec.params, spec.grad)
             out_shape = self._probe_plain(stack)
+            self.untraced = why_not_traced(spec.loss, spec.params, stack.predictions[0], stack.targets[0])
         self._read_output(out_shape, stack)
         if isinstance(self.adapter, jax_loss.JaxAdapter):
             self.adapter.out_shape = self._out_shape
@@ -186,9 +191,21 @@ class Evaluator:
         """The precision the loss actually computed in for ``dtype`` inputs (the lower of the
         two): a loss that casts to float32 is judged by float32's rounding."""
         out = getattr(self.adapter, "out_dtypes", {}).get(dtype, dtype)
-        if out not in DTYPES:
-            return dtype
-        return out if unit_roundoff(out) > unit_roundoff(dtype) else dtype
+        return judged_precision(dtype, lower(dtype, out, self.rounding_grid()))
+
+    def rounding_grid(self) -> str | None:
+        """The coarser grid every value and gradient of a float64 call lies on (``None``: float64
+        rounding), probed once on random cases (:func:`lossguard._precision.grid_of`)."""
+        if self._grid is False:
+            stack = random_stack(self.spec, shape_menu(self.spec, "quick")[0], np.random.default_rng(1), EVIDENCE)
+            try:
+                if self.has_gradient:
+                    self._grid = grid_of(*self.value_and_grad(stack, "float64"))
+                else:
+                    self._grid = grid_of(self.values(stack, "float64"))
+            except Exception:  # a loss that cannot be called here is reported by the checks
+                self._grid = None
+        return self._grid  # type: ignore[return-value]
 
     def prepare(self, plan: list[tuple[str, str, Cell]]) -> None:
         """Start compiling what a battery will ask for — (operation, dtype, shape) with operation
@@ -209,4 +226,12 @@ class Evaluator:
             self.adapter.cancel_pending()
 
     def describe(self) -> dict[str, Any]:
-        return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction}
+        self.rounding_grid()  # before reading out_dtypes: the probe adds to them
+        asked = [d for d in list(getattr(self.adapter, "out_dtypes", {})) if d in DTYPES]
+        computed = {d: lower(d, self.adapter.out_dtypes[d], self.rounding_grid())  # type: ignore[attr-defined]
+                    for d in asked}
+        computed["float64"] = lower("float64", computed.get("float64"), self.rounding_grid())
+        return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction,
+                "computed_in": computed, "untraced": self.untraced,
+                "notes": describe(computed, f"not traced by JAX ({self.untraced}): run as plain calls"
+                                  if self.untraced else "")}

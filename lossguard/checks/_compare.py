@@ -13,7 +13,7 @@ from ..cases import CaseStack
 from ..result import Example
 from ..spec import LossSpec
 
-__all__ = ["Mismatch", "mismatch", "replay", "examples_from", "fmt"]
+__all__ = ["Mismatch", "mismatch", "replay", "examples_from", "fmt", "worst_element"]
 
 
 def fmt(a: Any, digits: int = 6) -> str:
@@ -156,6 +156,21 @@ def mismatch(got: np.ndarray, expected: np.ndarray, atol: np.ndarray | float) ->
     return Mismatch(got, expected, atol)
 
 
+def worst_element(got: np.ndarray, expected: np.ndarray, atol: np.ndarray) -> tuple[float, float, float]:
+    """(abs error, rel error, allowance) of one case's element with the largest error over its
+    allowance, so that the three numbers a report prints come from the same element (a
+    non-finite disagreement counts as the worst)."""
+    g, e, a = (np.asarray(x, dtype=np.float64).reshape(-1) for x in (got, expected, atol))
+    with np.errstate(all="ignore"):
+        diff = np.abs(g - e)
+        agree = (g == e) | (np.isnan(g) & np.isnan(e))
+        ratio = np.where(agree, 0.0, np.where(np.isfinite(diff), diff / a, np.inf))
+        j = int(np.argmax(np.nan_to_num(ratio, nan=np.inf)))
+        ab = 0.0 if agree[j] else float(diff[j]) if np.isfinite(diff[j]) else np.inf
+        rel = ab / abs(e[j]) if np.isfinite(e[j]) and e[j] != 0 else ab
+    return ab, float(rel), float(a[j])
+
+
 def examples_from(
     m: Mismatch,
     spec: LossSpec,
@@ -173,6 +188,7 @@ def examples_from(
     """
     out = []
     for k in m.order(only_failed)[:most]:
+        ab, rel, allowed = worst_element(m.got[k], m.expected[k], np.broadcast_to(m.atol, m.got.shape)[k])
         out.append(
             Example(
                 what=what,
@@ -180,9 +196,9 @@ def examples_from(
                 targets=stack.targets[k],
                 got=m.got[k],
                 expected=m.expected[k],
-                abs_err=float(m.case_abs[k]),
-                rel_err=float(m.case_rel[k]),
-                allowance=float(np.max(m.atol[k])) if m.atol.ndim else float(m.atol),
+                abs_err=ab,
+                rel_err=rel,
+                allowance=allowed,
                 note=stack.note(int(k)),
                 replay=replay_of(int(k)) if replay_of else replay(spec, stack.predictions[k], stack.targets[k], dtype),
             )

@@ -90,7 +90,8 @@ def dots(g: np.ndarray, v: np.ndarray) -> np.ndarray:
     return np.stack([v[i].reshape(d, -1) @ g[i].reshape(-1) for i in range(k)])
 
 
-def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale: np.ndarray, n: int) -> np.ndarray:
+def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale: np.ndarray, n: int,
+                    dtype: str = "float64") -> np.ndarray:
     """Rounding allowance of g·v (K, D): γ_n(1 + S)(‖g‖∞ + G)‖v‖₁ + γ_m Σ|g_i v_i| (Higham ch. 3).
 
     Args:
@@ -99,6 +100,7 @@ def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale:
             largest |logit|; 1 for probability inputs).
         grad_scale: G, the size of one gradient term (K,) or a number (callers multiply it by the
             largest |cotangent| when the gradient was taken with one). n: operations per element.
+        dtype: the precision the gradient was computed in (a loss that downcasts: its dtype).
     Returns:
         (K, D) absolute allowances: the gradient's own rounding (first term) and the dot product's
         (second, m = the number of elements of a case).
@@ -106,7 +108,7 @@ def slope_allowance(g: np.ndarray, v: np.ndarray, scale: np.ndarray, grad_scale:
     k, d = v.shape[:2]
     ag = np.abs(g.reshape(k, -1))
     gmax = np.where(np.isfinite(ag), ag, 0.0).max(axis=1)
-    elem = gamma(n, "float64") * (1.0 + scale) * (gmax + grad_scale)  # normwise bound on each g_i
+    elem = gamma(n, dtype) * (1.0 + scale) * (gmax + grad_scale)  # normwise bound on each g_i
     l1, absdot = np.empty((k, d)), np.empty((k, d))
     av = np.empty(ag.shape[1])
     for i in range(k):  # one direction at a time: no (K, D, *S) temporary

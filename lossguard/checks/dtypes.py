@@ -37,6 +37,7 @@ from ..evaluate import NoGradient
 from ..ladders import magnitudes
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
+from .._cancelling import with_target_term
 from .._range import Beyond
 from ._base import Check, Context, planned, within
 from ._compare import examples_from, mismatch
@@ -104,14 +105,15 @@ def _compare(ctx: Context, stack: CaseStack, dtype: str, exp_v: np.ndarray, exp_
     inside = np.ones(k, bool) if beyond is None else beyond.inside(reach)
     scale = case_scale(ctx, stack.predictions)
     n = op_count(stack.cell.n, stack.cell.c or stack.cell.d or 1)
-    a_v = rounding_allowance(exp_v, scale, dtype=comp, n_ops=n)
+    scale_v, extra = with_target_term(scale, stack.targets, ctx.spec.kind)  # KL's Σ y log y cancels
+    a_v = rounding_allowance(exp_v, scale_v, dtype=comp, n_ops=n)
     m_v = mismatch(got_v, exp_v, a_v.atol)
     m_v.case_bad &= fits
     broke = m_v.case_bad.copy()
     m_v.case_bad &= inside
     bad = m_v.case_bad.copy()
     found = examples_from(m_v, ctx.spec, stack, f"value in {dtype}", dtype=dtype)
-    rule = f"value: {a_v.rule}"
+    rule = f"value: {a_v.rule}{extra}"
     if got_g is not None and exp_g is not None:
         a_g = rounding_allowance(exp_g, scale, dtype=comp, n_ops=n, normwise=True,
                                  grad_scale=gradient_term_scale(ctx, stack.targets))
@@ -138,9 +140,9 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
     oracle = ""
     low = tuple(d for d in ctx.judged_dtypes(dtypes) if spec.reference is not None or d != "float64")
     left_out = [d for d in dtypes if d not in ctx.judged_dtypes(dtypes)]
-    large = large and "float16" in low
+    large = large and "float16" in ctx.spec.dtypes
     beyond = ctx.beyond()
-    if not low:
+    if not low and not large:
         return CheckResult(name="dtypes", verdict="skip", seconds=time.perf_counter() - t0,
                            summary=(f"nothing to judge: no declared dtype below float64 "
                                     f"(dtypes={','.join(ctx.spec.dtypes)}) and no reference for float64"))

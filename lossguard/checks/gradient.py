@@ -105,7 +105,8 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
     with np.errstate(all="ignore"):
         # fmax.reduce skips nan like nanmax (nan only when every point is nan), without a warning
         top = np.maximum(np.abs(vals), np.fmax.reduce(np.abs(fv).reshape((k, -1) + out), axis=1))
-    atol = rounding_allowance(top, scale + _fd.H0_LOGITS, dtype="float64", n_ops=n, both_sides=1).atol
+    comp = ev.computed_dtype("float64")  # a loss that computes in float32 rounds at float32's u
+    atol = rounding_allowance(top, scale + _fd.H0_LOGITS, dtype=comp, n_ops=n, both_sides=1).atol
     atol = np.broadcast_to(atol, top.shape)
     steps = _fd.step_ladder(h0)
     fds, noise, f0s, phis = {}, {}, {}, {}
@@ -128,7 +129,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
     # reverse mode (or the declared grad for numpy losses) against finite differences
     with np.errstate(invalid="ignore"):  # inf · 0 where the true gradient is infinite: not judged
         slope = dots(g, v)
-        a_dot = slope_allowance(g, v, scale, big_g * cmax, n)
+        a_dot = slope_allowance(g, v, scale, big_g * cmax, n, comp)
     f0b = np.broadcast_to(f0s["c"][:, None], (k, d))
     taylor = taylor_orders(f0b, np.moveaxis(phis["c"][:, :, 0], -1, 0), steps, slope,
                            np.broadcast_to(noise["c"][:, None], (k, d)))
@@ -182,7 +183,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
             with np.errstate(invalid="ignore"):
                 su = dots(gu, v)
             bad |= directional_pair(ctx, tally, stack, "declared grad vs finite differences", su, fds["1"],
-                                     slope_allowance(gu, v, scale, big_g, n), labels, None)[0]
+                                     slope_allowance(gu, v, scale, big_g, n, comp), labels, None)[0]
 
     # the registry's hand-derived gradient
     if spec.reference is not None:
@@ -218,7 +219,7 @@ def _row_leaks(ctx: Context, tally: Tally, stack: CaseStack, out: tuple[int, ...
     with np.errstate(invalid="ignore"):
         leak = np.max(np.where(flat_own, 0.0, np.abs(flat_g)), axis=1)
         mine = np.max(np.where(flat_own, np.abs(flat_g), 0.0), axis=1)
-        tol = gamma(n, "float64") * (1.0 + scale) * (mine + big_g)
+        tol = gamma(n, ev.computed_dtype("float64")) * (1.0 + scale) * (mine + big_g)
         bad = ~(leak <= tol)
     ex = []
     for i in np.flatnonzero(bad)[:2]:

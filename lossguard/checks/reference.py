@@ -13,6 +13,7 @@ import time
 import numpy as np
 
 from ..evaluate import NoGradient
+from .._cancelling import with_target_term
 from ..references import evaluate_reference, get_reference
 from ..result import CheckResult
 from ..tolerance import op_count, rounding_allowance
@@ -93,10 +94,11 @@ def _run(ctx: Context) -> CheckResult:
         scale = case_scale(ctx, stack.predictions)
         n = op_count(cell.n, cell.c or cell.d or 1)
         dtype = ev.computed_dtype("float64")
-        a_v = rounding_allowance(exp_v, scale, dtype=dtype, n_ops=n)
+        scale_v, extra = with_target_term(scale, stack.targets, spec.kind)  # KL's Σ y log y cancels
+        a_v = rounding_allowance(exp_v, scale_v, dtype=dtype, n_ops=n)
         m_v = mismatch(got_v, exp_v, a_v.atol)
         bad = m_v.case_bad.copy()
-        rules.add("value: " + a_v.rule)
+        rules.add("value: " + a_v.rule + extra)
         found = examples_from(m_v, spec, stack, "value")
         max_abs, max_rel = max(max_abs, m_v.max_abs()), max(max_rel, m_v.max_rel())
         max_ratio = max(max_ratio, float(np.max(m_v.case_ratio)))

@@ -96,6 +96,7 @@ def render(result: Result, color: bool = False) -> str:
             + f", seed={result.seed}, effort={result.effort}, output={result.evaluation.get('output')},"
             f" adapter={result.evaluation.get('adapter')})")
     lines = [head]
+    lines += [f"  note: {n}" for n in result.evaluation.get("notes", [])]
     for c in result.checks:
         lines.append(render_check(c, color))
     counts = {v: sum(c.verdict == v for c in result.checks) for v in ("pass", "fail", "error", "skip")}
