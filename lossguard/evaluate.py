@@ -18,6 +18,7 @@ from .adapters.numpy_loss import NumpyAdapter
 from .cases import CaseStack, Cell, random_stack, shape_menu
 from .errors import LossCallError
 from .spec import LossSpec
+from ._shapes import survey
 from ._precision import EVIDENCE, describe, grid_of, judged_precision, lower, why_not_traced
 from .tolerance import DTYPES
 
@@ -47,6 +48,8 @@ class Evaluator:
         #: why JAX could not trace the loss (one line), when it fell back to plain calls
         self.untraced = ""
         self._grid: str | None | bool = False  # the rounding probe's answer; False: not yet probed
+        #: menu shapes left out of the battery, with the reason (:func:`lossguard._shapes.survey`)
+        self.left_out: dict[Cell, str] = {}
         self._prepare()
 
     # -- probing -----------------------------------------------------------------------------
@@ -74,6 +77,7 @@ class Evaluator:
             out_shape = self._probe_plain(stack)
             self.untraced = why_not_traced(spec.loss, spec.params, stack.predictions[0], stack.targets[0])
         self._read_output(out_shape, stack)
+        self.left_out = survey(self)  # shapes whose output reads differently: kept out of the battery
         if isinstance(self.adapter, jax_loss.JaxAdapter):
             self.adapter.out_shape = self._out_shape
 
@@ -234,4 +238,5 @@ class Evaluator:
         return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction,
                 "computed_in": computed, "untraced": self.untraced,
                 "notes": describe(computed, f"not traced by JAX ({self.untraced}): run as plain calls"
-                                  if self.untraced else "")}
+                                  if self.untraced else "")
+                + [f"{why}: that shape is left out" for why in self.left_out.values()]}

@@ -117,7 +117,9 @@ class Context:
     def cells(self) -> list[Cell]:
         if self.cells_override:
             return list(self.cells_override)
-        return shape_menu(self.spec, self.effort)
+        menu = shape_menu(self.spec, self.effort)
+        # shapes where the output reads differently from the probe's are left out (the header says so)
+        return [c for c in menu if c not in self.evaluator.left_out] or menu
 
     def cells_for(self, dtype: str) -> list[Cell]:
         """The shapes a check evaluates in ``dtype``.

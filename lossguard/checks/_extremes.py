@@ -15,6 +15,7 @@ import numpy as np
 from .._budget import call_size, case_count
 from ..cases import PATTERNS, CaseStack, Cell, concat, draw_targets, ladder_case_count, ladder_stack
 from ..ladders import common_grid, largest_finite, probability_edges, probability_rows, wide_magnitudes
+from .._simplex import looks_like_simplex, simplex_grid
 from ._base import Context
 
 __all__ = ["STACK_SIZE", "LEAST_CASES", "ACCUMULATOR", "fill_to", "on_grid", "extreme_stack", "overflow_bound"]
@@ -56,9 +57,12 @@ def fill_to(stack: CaseStack, filler: CaseStack | Callable[[], CaseStack], size:
 
 
 def on_grid(stack: CaseStack, dtypes: list[str] | tuple[str, ...]) -> CaseStack:
-    """Predictions and float targets moved onto values every dtype of ``dtypes`` holds."""
+    """Predictions and float targets moved onto values every dtype of ``dtypes`` holds (rows of
+    the simplex stay on it: :func:`lossguard._simplex.simplex_grid`)."""
     y = stack.targets
-    if np.issubdtype(y.dtype, np.floating):
+    if looks_like_simplex(y):  # distribution rows: rounded as a whole, so they stay on the simplex
+        y = simplex_grid(y, dtypes)
+    elif np.issubdtype(y.dtype, np.floating):
         y = common_grid(y, dtypes)
     return CaseStack(common_grid(stack.predictions, dtypes), y, stack.cell, list(stack.notes))
 

@@ -64,6 +64,7 @@ from ..errors import LossCallError
 from ..evaluate import NoGradient
 from ..result import CheckResult
 from ..tolerance import gamma, op_count, rounding_allowance
+from .._simplex import flushed
 from ._base import Check, Context
 from ._compare import examples_from, mismatch
 from ._gradient_parts import Tally, directional_pair, dots, example, point_values, slope_allowance, sum_out
@@ -233,9 +234,11 @@ def _row_leaks(ctx: Context, tally: Tally, stack: CaseStack, out: tuple[int, ...
 
 def _float32(ctx: Context, tally: Tally, stack: CaseStack, c: np.ndarray, scale: np.ndarray,
              big_g: np.ndarray, n: int, ok64: np.ndarray) -> np.ndarray:
-    """Reverse mode in float32 against float64 on the same float32-rounded cases."""
+    """Reverse mode in float32 against float64 on the same float32-rounded cases, float32
+    subnormals (predictions and float targets) flushed to zero in both, as XLA sees them."""
     ev = ctx.evaluator
-    s32 = stack.with_predictions(stack.predictions.astype(np.float32).astype(np.float64))
+    # XLA on CPU flushes float32 subnormals to zero: compare both precisions at the flushed input
+    s32 = flushed(stack.with_predictions(stack.predictions.astype(np.float32).astype(np.float64)), "float32")
     _, g32 = ev.value_and_grad(s32, "float32", cotangent=c)
     _, g64 = ev.value_and_grad(s32, "float64", cotangent=c)
     k = len(stack)
