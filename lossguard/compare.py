@@ -49,7 +49,7 @@ from .checks._compare import Mismatch, examples_from
 from .checks.reference import case_scale, gradient_term_scale
 from .errors import SpecError
 from .evaluate import Evaluator
-from .result import CheckResult, Example
+from .result import CAUTION, CheckResult, Example
 from .spec import LossSpec
 from .tolerance import op_count, rounding_allowance, unit_roundoff
 
@@ -95,6 +95,7 @@ class Comparison:
             "old": self.old, "new": self.new, "spec": self.spec, "seed": self.seed,
             "effort": self.effort, "versions": self.versions, "evaluation": self.evaluation,
             "seconds": self.seconds, "loss_evaluations": self.loss_evaluations, "agree": self.agree,
+            "caution": CAUTION,
             "parts": [p.to_dict() for p in self.parts],
             "largest": self.largest.to_dict() if self.largest else None,
             "smallest": self.smallest.to_dict() if self.smallest else None,

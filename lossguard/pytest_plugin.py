@@ -52,6 +52,7 @@ import pytest
 
 from ._plugin_state import _run, _safely, _State
 from .errors import LossguardError
+from .result import CAUTION
 from .options import SETTINGS
 from .spec import LossSpec, declare
 
@@ -317,6 +318,8 @@ def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: Any)
     if split:
         tr.write_line(f"lossguard: {split} of {len(state.workers)} declared losses ran on more than one "
                       f"worker, each compiling its functions there; --dist loadgroup keeps each on one worker")
+    if state.declared or state.adhoc:  # a run that used lossguard says what its passes mean
+        tr.write_line(f"lossguard: {CAUTION}")
     if not state.failures:
         return
     tr.write_sep("=", "lossguard: failed checks", red=True)

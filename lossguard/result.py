@@ -10,7 +10,10 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Example", "CheckResult", "Result", "VERDICTS"]
+__all__ = ["Example", "CheckResult", "Result", "VERDICTS", "CAUTION"]
+
+#: Said by every output: what a pass does and does not establish.
+CAUTION = "a pass is evidence from the inputs tried, not proof"
 
 #: pass: held on every case; fail: a property broke; skip: did not apply or was turned off;
 #: error: the loss could not be evaluated for this check (it raised, or has no gradient).
@@ -136,5 +139,6 @@ class Result:
             "seconds": self.seconds,
             "loss_evaluations": self.loss_evaluations,
             "ok": self.ok,
+            "caution": CAUTION,
             "checks": [c.to_dict() for c in self.checks],
         }

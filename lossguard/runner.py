@@ -66,6 +66,8 @@ def run_check(check: Any, ctx: Context) -> CheckResult:
         )
     if not result.hint and not result.ok:
         result.hint = check.skip_hint
+    if result.verdict == "pass" and result.cases == 0:  # nothing judged: not a pass
+        result.verdict, result.summary = "skip", f"nothing to judge: {result.summary}"
     result.seconds = result.seconds or (time.perf_counter() - t0)
     return result
 

@@ -13,7 +13,7 @@ from ..cases import CaseStack
 from ..result import Example
 from ..spec import LossSpec
 
-__all__ = ["Mismatch", "mismatch", "replay", "examples_from", "fmt", "worst_element"]
+__all__ = ["Mismatch", "mismatch", "replay", "examples_from", "fmt", "worst_element", "over_allowance"]
 
 
 def fmt(a: Any, digits: int = 6) -> str:
@@ -154,6 +154,14 @@ class Mismatch:
 
 def mismatch(got: np.ndarray, expected: np.ndarray, atol: np.ndarray | float) -> Mismatch:
     return Mismatch(got, expected, atol)
+
+
+def over_allowance(ratio: float) -> str:
+    """A worst case in words, from its error over its allowance (a non-finite result counts as
+    infinitely far): "3.2e+02 times its allowance", "non-finite where a finite value was due"."""
+    if not np.isfinite(ratio):
+        return "non-finite where a finite value was due (or finite where the true value is not)"
+    return f"{ratio:.2g} times its allowance"
 
 
 def worst_element(got: np.ndarray, expected: np.ndarray, atol: np.ndarray) -> tuple[float, float, float]:

@@ -336,8 +336,11 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
         summary += f"; {', '.join(left_out)} not declared (dtypes=), not tried"
     if beyond.note():
         summary += "; " + beyond.note()
+    if not failed and total == unjudged:
+        summary = "nothing to judge: " + summary
     return CheckResult(
-        name="finite", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
+        name="finite", verdict="fail" if failed else "pass" if total > unjudged else "skip", summary=summary,
+        cases=total, failed=failed,
         allowance="exact: finite wherever the true value is finite and representable; "
                   + ("; ".join(sorted(rules)) or "every result was finite, so no oracle was consulted"),
         worst=worst[:4],

@@ -18,7 +18,7 @@ from ..references import evaluate_reference, get_reference
 from ..result import CheckResult
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
-from ._compare import examples_from, mismatch
+from ._compare import examples_from, mismatch, over_allowance
 
 __all__ = ["CHECK", "reference_stack_values", "case_scale", "gradient_term_scale"]
 
@@ -117,7 +117,7 @@ def _run(ctx: Context) -> CheckResult:
     what = "value and gradient" if grad_checked else "value (no gradient oracle)"
     if failed:
         summary = (f"{what} differ from reference {spec.reference!r} on {failed} of {total} cases; "
-                   f"max abs error {max_abs:.3g}, max rel error {max_rel:.3g}")
+                   f"the worst is {over_allowance(max_ratio)}")
         verdict = "fail"
     else:
         summary = (f"{what} equal reference {spec.reference!r} on {total} cases "

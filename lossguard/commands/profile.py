@@ -67,6 +67,7 @@ def render_profile(prof: Profile) -> str:
         worst = "finiteness only (oracle)" if r.judged == "finiteness" else (
             f"{_fmt(wv)} / {_fmt(wg) if prof.has_gradient else 'n/a'} ULPs")
         lines.append(f"  {r.dtype:<10}{safe:<16}{worst:<40}{r.end}")
+    lines.append("  a safe range is measured on the inputs tried: evidence, not proof")
     return "\n".join(lines) + "\n"
 
 

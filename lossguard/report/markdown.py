@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
-from ..result import CheckResult, Example, Result
+from ..result import CAUTION, CheckResult, Example, Result
 from .text import inline
 
 if TYPE_CHECKING:
@@ -59,7 +59,7 @@ def _table(rows: list[CheckResult], first: str) -> list[str]:
 def to_markdown(result: Result) -> str:
     """The battery report in markdown."""
     s = result.spec
-    verdict = "all checks passed" if result.ok else "some checks failed"
+    verdict = f"all checks passed ({CAUTION})" if result.ok else "some checks failed"
     lines = [
         f"### lossguard: `{result.target}` — {verdict}",
         "",
@@ -73,7 +73,8 @@ def to_markdown(result: Result) -> str:
     for c in result.checks:
         if c.verdict in ("fail", "error"):
             lines += _failure(c)
-    lines += ["", f"{len(result.checks)} checks in {result.seconds:.1f} s, {result.loss_evaluations} loss evaluations."]
+    lines += ["", f"{len(result.checks)} checks in {result.seconds:.1f} s, {result.loss_evaluations} loss evaluations; "
+              f"{CAUTION}."]
     return "\n".join(lines) + "\n"
 
 
@@ -90,7 +91,8 @@ def comparison_to_markdown(c: Comparison) -> str:
     for title, e in (("Largest divergence", c.largest), ("Smallest input that shows it", c.smallest)):
         if e is not None:
             lines += ["", f"**{title}**", ""] + _example_block(e, old_new=True)
-    lines += ["", f"Compared in {c.seconds:.1f} s, {c.loss_evaluations} loss evaluations."]
+    lines += ["", f"Compared in {c.seconds:.1f} s, {c.loss_evaluations} loss evaluations; agreement is "
+              "evidence from the inputs tried, not proof."]
     return "\n".join(lines) + "\n"
 
 

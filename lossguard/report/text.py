@@ -12,7 +12,7 @@ from typing import IO, TYPE_CHECKING, Any
 
 import numpy as np
 
-from ..result import CheckResult, Example, Result
+from ..result import CAUTION, CheckResult, Example, Result
 
 if TYPE_CHECKING:
     from ..compare import Comparison
@@ -93,6 +93,10 @@ def render(result: Result, color: bool = False) -> str:
     spec = result.spec
     head = (f"lossguard: {result.target}  (kind={spec['kind']}, inputs={spec['inputs']}"
             + (f", reference={spec['reference']}" if spec.get("reference") else "")
+            + "".join(f", {k}={v}" for k, v in (spec.get("params") or {}).items())
+            + (f", classes={spec['classes']}" if spec.get("classes") else "")
+            + (f", dtypes={','.join(spec['dtypes'])}" if spec.get("dtypes") and len(spec["dtypes"]) < 4 else "")
+            + (f", max_logit={spec['max_logit']}" if spec.get("max_logit") and spec.get("inputs") == "logits" else "")
             + f", seed={result.seed}, effort={result.effort}, output={result.evaluation.get('output')},"
             f" adapter={result.evaluation.get('adapter')})")
     lines = [head]
@@ -101,7 +105,8 @@ def render(result: Result, color: bool = False) -> str:
         lines.append(render_check(c, color))
     counts = {v: sum(c.verdict == v for c in result.checks) for v in ("pass", "fail", "error", "skip")}
     tail = (f"{counts['pass']} passed, {counts['fail']} failed, {counts['error']} errors, "
-            f"{counts['skip']} skipped in {result.seconds:.1f}s ({result.loss_evaluations} loss evaluations)")
+            f"{counts['skip']} skipped in {result.seconds:.1f}s ({result.loss_evaluations} loss evaluations); "
+            f"{CAUTION}")
     lines.append(_paint(tail, "pass" if result.ok else "fail", color))
     return "\n".join(lines) + "\n"
 
@@ -135,6 +140,7 @@ def render_comparison(c: Comparison, color: bool = False) -> str:
     if c.smallest is not None:
         lines += _pair("smallest input that shows it", c.smallest)
     verdict = "the implementations agree" if c.agree else "the implementations diverge"
-    tail = f"{verdict} (exit {c.exit_code}) in {c.seconds:.1f}s ({c.loss_evaluations} loss evaluations)"
+    tail = (f"{verdict} (exit {c.exit_code}) in {c.seconds:.1f}s ({c.loss_evaluations} loss evaluations); "
+            f"agreement is evidence from the inputs tried, not proof")
     lines.append(_paint(tail, "pass" if c.agree else "fail", color))
     return "\n".join(lines) + "\n"
