@@ -114,6 +114,8 @@ class Beyond:
     #: per dtype: (smallest reach that broke, its cause, largest reach below it that held)
     first: dict[str, tuple[float, str]] = field(default_factory=dict)
     held: dict[str, list[float]] = field(default_factory=dict)
+    #: per dtype: the smallest reach that broke anywhere, inside the range included
+    lowest: dict[str, float] = field(default_factory=dict)
     cases: int = 0
 
     def inside(self, reach: np.ndarray) -> np.ndarray:
@@ -125,6 +127,8 @@ class Beyond:
         out = ~self.inside(reach)
         self.cases += int(out.sum())
         self.held.setdefault(dtype, []).extend(reach[~broke].tolist())
+        if broke.any():
+            self.lowest[dtype] = min(self.lowest.get(dtype, np.inf), float(reach[broke].min()))
         idx = np.flatnonzero(out & broke)
         if idx.size:
             j = int(idx[np.argmin(reach[idx])])
@@ -136,6 +140,9 @@ class Beyond:
         """One phrase per dtype that broke beyond the range (none when nothing did)."""
         out = []
         for dtype, (y, cause) in self.first.items():
+            if self.lowest.get(dtype, y) < y:  # it broke inside the range already: no "up to"
+                out.append(f"in {dtype} beyond the range, first at |z| = {y:.3g}: {cause}")
+                continue
             below = [r for r in self.held.get(dtype, []) if r < y]
             x = max(below) if below else self.max_logit
             out.append(f"{what} up to |z| = {x:.3g} in {dtype}; beyond, first at |z| = {y:.3g}: {cause}")
