@@ -137,6 +137,7 @@ def run(
     ctx = Context(spec=spec, evaluator=ev, seed=seed, effort=effort,
                   cells_override=tuple(cells) if cells else None)
     _compile_ahead(ctx, [check for check, reason in battery if reason is None])
+    ev.rounding_grid()  # the one-time precision probe, before any check counts its evaluations
     results = []
     for i, (check, reason) in enumerate(battery):
         if progress is not None:
