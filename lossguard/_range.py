@@ -35,7 +35,7 @@ from ._suggest import bad_value, did_you_mean
 from .errors import SpecError
 from .tolerance import DTYPES
 
-__all__ = ["DEFAULT_MAX_LOGIT", "parse_max_logit", "parse_dtypes", "describe_max_logit", "case_reach",
+__all__ = ["split_rungs", "DEFAULT_MAX_LOGIT", "parse_max_logit", "parse_dtypes", "describe_max_logit", "case_reach",
            "Beyond", "judged_dtypes"]
 
 #: The largest |logit| a loss must handle unless declared otherwise (common practice; see above).
@@ -86,6 +86,12 @@ def judged_dtypes(declared: Iterable[str], wanted: Iterable[str]) -> tuple[str, 
     """The dtypes of ``wanted`` that the loss is declared for, in ``wanted``'s order."""
     keep = set(declared)
     return tuple(d for d in wanted if d in keep)
+
+
+def split_rungs(mags: np.ndarray, max_logit: float) -> tuple[np.ndarray, np.ndarray]:
+    """Ladder magnitudes inside (≤ ``max_logit``) and beyond the declared range."""
+    mags = np.asarray(mags, dtype=np.float64)
+    return mags[mags <= max_logit], mags[mags > max_logit]
 
 
 def case_reach(inputs: str, predictions: np.ndarray) -> np.ndarray:

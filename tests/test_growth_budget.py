@@ -55,9 +55,23 @@ def any_kind(z: jax.Array, y: jax.Array) -> jax.Array:
 
 
 def context(loss, cell: Cell | None = None, effort: str = "quick", **declared: object) -> Context:  # noqa: ANN001
-    spec = declare(loss, **declared)  # type: ignore[arg-type]
-    return Context(spec=spec, evaluator=Evaluator(spec), seed=0, effort=effort,
-                   cells_override=None if cell is None else (cell,))
+    # the budgets below are those of the whole format's ladder (max_logit="full"); the evaluator's
+    # one-time precision probe runs first, so the counts are the checks' own
+    spec = declare(loss, **{"max_logit": "full", **declared})  # type: ignore[arg-type]
+    ev = Evaluator(spec)
+    ev.rounding_grid()
+    ev.adapter.calls = 0  # count from here: the probe's evaluations are the evaluator's, not a check's
+    return Context(spec=spec, evaluator=ev, seed=0, effort=effort, cells_override=None if cell is None else (cell,))
+
+
+def test_at_a_large_shape_the_default_range_still_judges_the_rungs_inside_it() -> None:
+    # packed cases are judged by their largest |z|: rungs inside and beyond |z| ≤ 1e3 are packed
+    # apart, so the inside ones are still judged (not all left as information)
+    ctx = context(window_loss, BIG, kind="categorical", reference="categorical_ce", max_logit=1e3)
+    r = check_dtypes(ctx, ("float32",), large=False)
+    assert r.verdict == "pass" and r.cases > 0, r.summary
+    bad = context(window_loss_naive, BIG, kind="categorical", reference="categorical_ce", max_logit=1e3)
+    assert check_finite(bad, ("float64",)).verdict == "fail"  # softmax without max subtraction: |z| = 1e3
 
 
 def packed_pairs(note: str) -> list[tuple[str, float]]:

@@ -15,6 +15,7 @@ import numpy as np
 from .._budget import call_size, case_count
 from ..cases import PATTERNS, CaseStack, Cell, concat, draw_targets, ladder_case_count, ladder_stack
 from ..ladders import common_grid, largest_finite, probability_edges, probability_rows, wide_magnitudes
+from .._range import split_rungs
 from .._simplex import looks_like_simplex, simplex_grid
 from ._base import Context
 
@@ -132,9 +133,16 @@ def extreme_stack(ctx: Context, cell: Cell, dtype: str) -> CaseStack:
     """
     mags = wide_magnitudes(dtype)
     cases = ladder_case_count(cell, len(mags) * len(PATTERNS), least=LEAST_CASES)
-    with np.errstate(over="ignore"):  # softmax of rows at the dtype's top: z − max z may be −inf
-        ladder = ladder_stack(ctx.spec, cell, ctx.rng(f"finite ladder {cell} {dtype}"), mags=mags,
-                              domain=ctx.domain, cases=cases, order="loss", dtypes=[dtype],
-                              apart_above=overflow_bound(ctx, cell, dtype))
+    # packed cases never mix rungs inside and beyond the declared |logit|: a case is judged by its
+    # largest |z|, so the two halves are laddered apart (at the menu's shapes nothing changes)
+    halves = [mags] if cases >= len(mags) * len(PATTERNS) else [h for h in split_rungs(mags, ctx.spec.max_logit) if h.size]
+    ladders = []
+    for i, part in enumerate(halves):
+        k = cases if len(halves) == 1 else ladder_case_count(cell, len(part) * len(PATTERNS), least=LEAST_CASES)
+        with np.errstate(over="ignore"):  # softmax of rows at the dtype's top: z − max z may be −inf
+            ladders.append(ladder_stack(ctx.spec, cell, ctx.rng(f"finite ladder {cell} {dtype}" + " beyond" * i),
+                                        mags=part, domain=ctx.domain, cases=k, order="loss", dtypes=[dtype],
+                                        apart_above=overflow_bound(ctx, cell, dtype)))
+    ladder = concat(ladders)
     parts = [ladder] + ([_edge_stack(ctx, cell, dtype)] if ctx.spec.inputs == "probabilities" else [])
     return on_grid(fill_to(concat(parts), lambda: ctx.random_cases(cell)), [dtype])

@@ -32,13 +32,13 @@ import time
 
 import numpy as np
 
-from ..cases import CaseStack, Cell, ladder_stack, to_inputs
+from ..cases import PATTERNS, CaseStack, Cell, concat, ladder_case_count, ladder_stack, to_inputs
 from ..evaluate import NoGradient
 from ..ladders import magnitudes
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
 from .._cancelling import with_target_term
-from .._range import Beyond
+from .._range import Beyond, split_rungs
 from ._base import Check, Context, planned, within
 from ._compare import examples_from, mismatch
 from .finite import fill_to, on_grid, own_float64, per_case_finite, reduced_fits, reference_batch
@@ -53,8 +53,14 @@ BATCH_MARGIN = 16.0
 
 def common_stack(ctx: Context, cell: Cell) -> CaseStack:
     """Ladder (|z| ≤ 1e4) and random cases on the grid shared by every dtype."""
-    ladder = ladder_stack(ctx.spec, cell, ctx.rng(f"dtypes ladder {cell}"), mags=magnitudes("float16"),
-                          domain=ctx.domain, dtypes=["float16"])
+    mags = magnitudes("float16")
+    if ladder_case_count(cell, len(mags) * len(PATTERNS)) >= len(mags) * len(PATTERNS):
+        ladder = ladder_stack(ctx.spec, cell, ctx.rng(f"dtypes ladder {cell}"), mags=mags,
+                              domain=ctx.domain, dtypes=["float16"])
+    else:  # packed: rungs inside and beyond the declared |logit| never share a case
+        ladder = concat([ladder_stack(ctx.spec, cell, ctx.rng(f"dtypes ladder {cell}" + " beyond" * i), mags=part,
+                                      domain=ctx.domain, dtypes=["float16"])
+                         for i, part in enumerate(split_rungs(mags, ctx.spec.max_logit)) if part.size])
     return on_grid(fill_to(ladder, lambda: ctx.random_cases(cell)), DTYPES)
 
 
