@@ -29,7 +29,7 @@ from .spec import LossSpec
 
 __all__ = ["Cell", "CaseStack", "EFFORTS", "shape_menu", "cases_per_cell", "target_domain",
            "random_stack", "ladder_stack", "ladder_case_count", "to_inputs", "concat", "draw_targets",
-           "LADDER_LEAST"]
+           "LADDER_LEAST", "split_cell", "halves", "take_rows", "join"]
 
 #: Fewest cases the shared ladder is packed into at the largest shapes: one, holding every
 #: (pattern, magnitude) pair. Its comparisons are allowed the rounding of its largest |z| (1e4);
@@ -313,3 +313,28 @@ def concat(stacks: Sequence[CaseStack]) -> CaseStack:
         first.cell,
         [n for s in stacks for n in (s.notes or [""] * len(s))],
     )
+
+
+# ------------------------------------------------------------------------------ rows of cases
+
+
+def split_cell(cells: list[Cell]) -> Cell:
+    """The menu cell whose halves are evaluated: the one with the most rows."""
+    return max(cells, key=lambda c: c.n)
+
+
+def halves(cell: Cell) -> Cell:
+    """The cell of half the rows."""
+    return Cell(cell.n // 2, cell.c, cell.d)
+
+
+def take_rows(stack: CaseStack, idx: np.ndarray, cell: Cell | None = None) -> CaseStack:
+    """Rows ``idx`` (K, M) of every case (M may differ from N: then pass the new ``cell``)."""
+    k = np.arange(len(stack))[:, None]
+    return CaseStack(stack.predictions[k, idx], stack.targets[k, idx], cell or stack.cell, list(stack.notes))
+
+
+def join(a: CaseStack, b: CaseStack, cell: Cell) -> CaseStack:
+    """Rows of ``a`` then rows of ``b``, case by case."""
+    return CaseStack(np.concatenate([a.predictions, b.predictions], axis=1),
+                     np.concatenate([a.targets, b.targets], axis=1), cell, list(a.notes))

@@ -46,7 +46,7 @@ from ._suggest import bad_value, did_you_mean
 from .cases import EFFORTS, CaseStack, Cell
 from .checks._base import Context
 from .checks._compare import Mismatch, examples_from
-from .checks.reference import case_scale, gradient_term_scale
+from .checks._scales import case_scale, gradient_term_scale
 from .errors import SpecError
 from .evaluate import Evaluator
 from .result import CheckResult, Example

@@ -46,8 +46,10 @@ import numpy as np
 
 from .cases import CaseStack, Cell, concat, ladder_stack, shape_menu
 from .checks._base import Context
-from .checks.finite import ACCUMULATOR, reduced_fits, reference_batch
-from .checks.reference import case_scale, gradient_term_scale
+from .checks._extremes import ACCUMULATOR
+from .checks._finite_oracle import reduced_fits
+from .checks._reference_batch import reference_batch
+from .checks._scales import case_scale, gradient_term_scale
 from ._suggest import bad_value, did_you_mean
 from .errors import SpecError
 from .evaluate import Evaluator, NoGradient
@@ -55,7 +57,7 @@ from .ladders import common_grid, largest_finite, profile_magnitudes, round_down
 from .spec import LossSpec
 from .tolerance import DTYPES, op_count, rounding_allowance
 
-from ._mp_oracle import _MP, mp_reference_stack
+from ._mp_oracle import mp_available, mp_reference_stack
 
 
 __all__ = ["PROFILE_PATTERNS", "DtypeProfile", "Profile", "profile", "mp_available", "mp_reference_stack"]
@@ -283,8 +285,3 @@ def profile(
         prof.rows.append(_dtype_row(ctx, sub, mags[idx], parts, d, self_oracle))
     prof.seconds = time.perf_counter() - t0
     return prof
-
-
-def mp_available() -> bool:
-    """Whether mpmath can be imported (it is an optional dependency)."""
-    return _MP is not None

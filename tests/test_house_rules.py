@@ -75,7 +75,8 @@ def _imports(name: str, path: Path, known: set[str]) -> set[str]:
             for i in range(2, len(parts) + 1):  # parent packages run first; the root's is left out
                 sub = ".".join(parts[:i])
                 # a package's own __init__ is already running while its submodules import
-                if sub in known and sub != name and not name.startswith(sub + "."):
+                # (and ``from . import x`` in an __init__ names the package itself)
+                if sub in known and not name.startswith(sub + ".") and not (is_pkg and sub == name):
                     out.add(sub)
     return out
 
@@ -130,7 +131,7 @@ def cycles(root: Path) -> list[list[str]]:
                 comp.append(w)
                 if w == v:
                     break
-            if len(comp) > 1:
+            if len(comp) > 1 or v in graph[v]:
                 out.append(sorted(comp))
 
     for v in sorted(graph):
@@ -189,9 +190,10 @@ def test_the_rules_fail_on_a_tree_that_breaks_them(tmp_path: Path) -> None:
         "low.py": "def f():\n    from .high import g\n    return g\n",
         "high.py": "from .low import f\n\ndef g():\n" + "    x = 1\n" * 81,
         "typed.py": "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from .high import g\n",
+        "selfish.py": "from .selfish import z\n",
     })
     assert check_to_check_imports(root) == ["pkg.checks.a -> pkg.checks.b"]
-    assert cycles(root) == [["pkg.high", "pkg.low"]]  # the import inside f counts
+    assert cycles(root) == [["pkg.high", "pkg.low"], ["pkg.selfish"]]  # the import inside f counts
     assert long_functions(root) == ["pkg.high.g: 82 lines"]
 
 

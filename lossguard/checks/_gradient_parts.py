@@ -21,15 +21,27 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .. import _fd
+from .._budget import case_count
 from .._taylor import TaylorResult
-from ..cases import CaseStack
+from ..cases import CaseStack, Cell
 from ..evaluate import Evaluator
 from ..result import Example
 from ..tolerance import gamma
 from ._base import Context
 from ._compare import replay
 
-__all__ = ["Tally", "point_values", "sum_out", "dots", "slope_allowance", "example", "directional_pair"]
+__all__ = ["DIRECTIONS", "special_cases", "Tally", "point_values", "sum_out", "dots", "slope_allowance", "example", "directional_pair"]
+
+
+#: Finite-difference directions per case, by effort (the gradient and second-order checks).
+DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
+
+
+def special_cases(ctx: Context, cell: Cell) -> CaseStack:
+    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`);
+    at large shapes packed row by row into fewer cases (:func:`lossguard._fd.packed_branch_points`)."""
+    k = case_count(6, cell.elements(), least=1)
+    return _fd.packed_branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain, k)
 
 
 def point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray, out: tuple[int, ...]) -> np.ndarray:

@@ -57,7 +57,7 @@ import numpy as np
 
 from .. import _fd
 from .._taylor import taylor_along, taylor_orders
-from .._budget import case_count, large_case
+from .._budget import large_case
 from ..cases import CaseStack, Cell, concat
 from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
@@ -66,13 +66,12 @@ from ..result import CheckResult
 from ..tolerance import gamma, op_count, rounding_allowance
 from ._base import Check, Context
 from ._compare import examples_from, mismatch
-from ._gradient_parts import Tally, directional_pair, dots, example, point_values, slope_allowance, sum_out
-from .reference import case_scale, gradient_term_scale, reference_stack_values
+from ._gradient_parts import (DIRECTIONS, Tally, directional_pair, dots, example, point_values, slope_allowance,
+                              special_cases, sum_out)
+from ._scales import case_scale, gradient_term_scale
+from ._reference_batch import reference_batch
 
 __all__ = ["CHECK", "check_stacks", "special_cases", "DIRECTIONS"]
-
-DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
-
 
 def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "") -> None:
     spec, ev = ctx.spec, ctx.evaluator
@@ -187,8 +186,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
     # the registry's hand-derived gradient
     if spec.reference is not None:
         tally.oracles.add(f"registry {spec.reference!r}")
-        with np.errstate(all="ignore"):
-            _, gref = reference_stack_values(ctx, z, y, cotangent=c)
+        _, gref = reference_batch(ctx, z, y, cotangent=c)
         al = rounding_allowance(gref, scale, dtype=ev.computed_dtype("float64"), n_ops=n, normwise=True,
                                 grad_scale=big_g * cmax)
         m = mismatch(g, gref, al.atol)
@@ -278,13 +276,6 @@ def _run(ctx: Context) -> CheckResult:
         parts = [ctx.standard_cases(cell), special_cases(ctx, cell)]
         stacks += parts if large_case(cell.elements()) else [concat(parts)]  # large cases are probed one by one
     return check_stacks(ctx, stacks)
-
-
-def special_cases(ctx: Context, cell: Cell) -> CaseStack:
-    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`);
-    at large shapes packed row by row into fewer cases (:func:`lossguard._fd.packed_branch_points`)."""
-    k = case_count(6, cell.elements(), least=1)
-    return _fd.packed_branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain, k)
 
 
 def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:

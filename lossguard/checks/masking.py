@@ -35,7 +35,8 @@ from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
 from ._base import EAGER_DTYPE, Check, Context, only, planned
 from ._compare import replay
-from .finite import own_float64, per_case_finite, reduced_fits, reference_batch
+from ._finite_oracle import own_float64, per_case_finite, reduced_fits
+from ._reference_batch import reference_batch
 
 __all__ = ["CHECK", "check_masking", "masked_cases", "DEPTHS"]
 

@@ -35,7 +35,7 @@ import time
 
 import numpy as np
 
-from .._search import Part, Tally, single, value_and_grad
+from ._property import Part, Tally, single, value_and_grad
 from ..cases import CaseStack, Cell
 from ..references import get_reference
 from ..result import CheckResult, Example
@@ -44,7 +44,7 @@ from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import replay
-from .reference import case_scale
+from ._scales import case_scale
 
 __all__ = ["CHECK", "nonnegative_parts"]
 

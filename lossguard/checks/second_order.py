@@ -55,8 +55,8 @@ from ..result import CheckResult, Example
 from ..tolerance import gamma, op_count
 from ._base import Check, Context, never
 from ._compare import replay
-from .gradient import DIRECTIONS, special_cases
-from .reference import case_scale, gradient_term_scale
+from ._gradient_parts import DIRECTIONS, special_cases
+from ._scales import case_scale, gradient_term_scale
 
 __all__ = ["CHECK"]
 
