@@ -37,13 +37,11 @@ from hypothesis import strategies as st
 from hypothesis.errors import Flaky, HypothesisException
 
 
-__all__ = ["EXAMPLES", "BUDGET_PER_EXAMPLE", "Found", "SearchUnavailable", "search_settings", "search_seed",
+__all__ = ["BUDGET_PER_EXAMPLE", "Found", "SearchUnavailable", "search_settings", "search_seed",
            "smallest_failure"]
 
 T = TypeVar("T")
 
-#: Hypothesis examples generated per search, by effort.
-EXAMPLES = {"quick": 25, "default": 50, "thorough": 200}
 #: Property evaluations allowed per search (generation and shrinking), per generated example.
 BUDGET_PER_EXAMPLE = 6
 

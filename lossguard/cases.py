@@ -24,7 +24,7 @@ import numpy as np
 
 from ._budget import case_count
 from .ladders import PATTERNS, ladder_rows, magnitudes, mixed_scales, thin_rungs
-from .options import EFFORTS
+from .effort import EFFORTS, Effort, get_effort
 from .spec import LossSpec
 
 __all__ = ["Cell", "CaseStack", "EFFORTS", "shape_menu", "cases_per_cell", "target_domain",
@@ -83,22 +83,20 @@ class CaseStack:
         return self.notes[k] if self.notes and k < len(self.notes) else ""
 
 
-def shape_menu(spec: LossSpec, effort: str = "default") -> list[Cell]:
-    """The few shapes a battery uses (a class count fixed by the spec is honoured)."""
+def shape_menu(spec: LossSpec, effort: str | Effort = "default") -> list[Cell]:
+    """The few shapes a battery uses (a class count fixed by the spec is honoured): the first
+    ``Effort.menu_cells`` of the menu."""
     if spec.kind == "binary":
-        cells = [Cell(16), Cell(8, d=3)]
-        if effort == "thorough":
-            cells.append(Cell(64, d=5))
+        cells = [Cell(16), Cell(8, d=3), Cell(64, d=5)]
     else:
         c_small, c_large = (spec.classes, spec.classes) if spec.classes else (3, 10)
-        cells = [Cell(8, c_small), Cell(16, c_large)]
-        if effort == "thorough":
-            cells += [Cell(64, c_large), Cell(5, spec.classes or 2)]
-    return cells[:1] if effort == "quick" else cells
+        cells = [Cell(8, c_small), Cell(16, c_large), Cell(64, c_large), Cell(5, spec.classes or 2)]
+    return cells[:get_effort(effort).menu_cells]
 
 
-def cases_per_cell(effort: str = "default", cell: Cell | None = None) -> int:
-    """How many random cases each cell gets: 16, 48 or 256 by effort, fewer for a large ``cell``.
+def cases_per_cell(effort: str | Effort = "default", cell: Cell | None = None) -> int:
+    """How many random cases each cell gets: ``Effort.cases_per_cell`` (16, 48 or 256), fewer for
+    a large ``cell``.
 
     With ``cell``, :func:`lossguard._budget.case_count` bounds the count by the cell's size (the
     menu's shapes keep the full count; a (4096, 1000) cell gets 2).
@@ -107,7 +105,7 @@ def cases_per_cell(effort: str = "default", cell: Cell | None = None) -> int:
         >>> cases_per_cell("default"), cases_per_cell("default", Cell(4096, 1000))
         (48, 2)
     """
-    want = {"quick": 16, "default": 48, "thorough": 256}[effort]
+    want = get_effort(effort).cases_per_cell
     return want if cell is None else case_count(want, cell.elements())
 
 

@@ -10,10 +10,10 @@ import argparse
 from dataclasses import dataclass
 from typing import Any
 
+from .effort import EFFORTS
+
 __all__ = ["EFFORTS", "Setting", "SETTINGS", "add_to_argparse"]
 
-#: Effort profiles: quick (a pre-commit hook), default (CI), thorough (before a release).
-EFFORTS = ("quick", "default", "thorough")
 
 
 @dataclass(frozen=True)

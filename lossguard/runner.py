@@ -10,11 +10,11 @@ import time
 from collections.abc import Sequence
 from typing import Any
 
-from ._suggest import bad_value, did_you_mean
 from .adapters._base import first_line
-from .cases import EFFORTS, Cell
+from .cases import Cell
+from .effort import validate_run
 from .checks import Context, select_checks
-from .errors import LossCallError, SpecError
+from .errors import LossCallError
 from .evaluate import Evaluator, NoGradient
 from .result import CheckResult, Result
 from .spec import LossSpec
@@ -37,13 +37,6 @@ def versions() -> dict[str, str]:
         "jax": jax.__version__,
         "hypothesis": hypothesis.__version__,
     }
-
-
-def _validate(seed: Any, effort: Any) -> None:
-    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        raise SpecError(bad_value("seed", seed, "a non-negative integer", "try seed=0"))
-    if effort not in EFFORTS:
-        raise SpecError(bad_value("effort", effort, "quick, default or thorough", did_you_mean(str(effort), EFFORTS)))
 
 
 def run_check(check: Any, ctx: Context) -> CheckResult:
@@ -128,7 +121,7 @@ def run(
         >>> run(declare(ce, kind="categorical", reference="categorical_ce"), effort="quick").ok
         True
     """
-    _validate(seed, effort)
+    validate_run(seed, effort)
     t0 = time.perf_counter()
     battery = select_checks(spec, only)
     ev = evaluator or Evaluator(spec)

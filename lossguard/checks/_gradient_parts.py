@@ -30,11 +30,7 @@ from ..tolerance import gamma
 from ._base import Context
 from ._compare import replay
 
-__all__ = ["DIRECTIONS", "special_cases", "Tally", "point_values", "sum_out", "dots", "slope_allowance", "example", "directional_pair"]
-
-
-#: Finite-difference directions per case, by effort (the gradient and second-order checks).
-DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
+__all__ = ["special_cases", "Tally", "point_values", "sum_out", "dots", "slope_allowance", "example", "directional_pair"]
 
 
 def special_cases(ctx: Context, cell: Cell) -> CaseStack:

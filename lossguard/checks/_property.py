@@ -24,7 +24,7 @@ from typing import Any, TypeVar
 import numpy as np
 from hypothesis import strategies as st
 
-from .._search import EXAMPLES, SearchUnavailable, search_seed, smallest_failure
+from .._search import SearchUnavailable, search_seed, smallest_failure
 from ..cases import CaseStack, Cell
 from ..errors import LossCallError
 from ..evaluate import NoGradient
@@ -151,7 +151,7 @@ class Tally:
         max_examples: int | None = None,
     ) -> None:
         """Search for the smallest case failing ``judge`` and put its example first."""
-        effort_examples = EXAMPLES.get(ctx.effort, EXAMPLES["default"])
+        effort_examples = ctx.effort.search_examples
         n = effort_examples if max_examples is None else min(max_examples, effort_examples)
         s = search_seed(ctx.seed, self.name)
 

@@ -66,12 +66,12 @@ from ..result import CheckResult
 from ..tolerance import gamma, op_count, rounding_allowance
 from ._base import Check, Context
 from ._compare import examples_from, mismatch
-from ._gradient_parts import (DIRECTIONS, Tally, directional_pair, dots, example, point_values, slope_allowance,
+from ._gradient_parts import (Tally, directional_pair, dots, example, point_values, slope_allowance,
                               special_cases, sum_out)
 from ._scales import case_scale, gradient_term_scale
 from ._reference_batch import reference_batch
 
-__all__ = ["CHECK", "check_stacks", "special_cases", "DIRECTIONS"]
+__all__ = ["CHECK", "check_stacks", "special_cases"]
 
 def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "") -> None:
     spec, ev = ctx.spec, ctx.evaluator
@@ -91,7 +91,7 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
     tally.oracles.add(oracle)
 
     # directions, steps and the finite-difference stack (one evaluator call per chunk)
-    v, labels = _fd.unit_directions(rng, k, shape, DIRECTIONS.get(ctx.effort, 3))
+    v, labels = _fd.unit_directions(rng, k, shape, ctx.effort.directions)
     if spec.inputs == "probabilities":  # scale by the room to the boundary: points stay in [0, 1]
         v = v * np.minimum(z, 1.0 - z)[:, None]
         norm = np.sqrt(np.sum(v.reshape(v.shape[:2] + (-1,)) ** 2, axis=2))
