@@ -166,7 +166,7 @@ class Tally:
         except SearchUnavailable as exc:
             self.search = f"no Hypothesis search: {exc}; the cases shown come from the sweep"
             return
-        rerun = f"rerun: --seed {ctx.seed} --effort {ctx.effort} --only {self.name}"
+        rerun = f"rerun with seed={ctx.seed}, effort={str(ctx.effort)!r}, only={[self.name]!r}"
         if found is None:
             self.search = (f"a Hypothesis search (seed {s}, {n} examples) found no smaller failing case; "
                            f"the cases shown come from the sweep ({rerun})")
