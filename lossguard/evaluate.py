@@ -12,6 +12,9 @@ from typing import Any
 
 import numpy as np
 
+from ._deadline import Stopped
+from ._guard import Guard
+from ._outputs import check_grad
 from .adapters import jax_loss
 from .adapters._base import Adapter, first_line
 from .adapters.numpy_loss import NumpyAdapter
@@ -37,13 +40,18 @@ class Evaluator:
         reduction: ``"mean"``, ``"sum"`` (scalar outputs) or ``"none"`` (per-example).
     """
 
-    def __init__(self, spec: LossSpec) -> None:
-        self.spec = spec
+    def __init__(self, spec: LossSpec, guard: Guard | None = None) -> None:
+        #: every call of the loss and grad goes through the guard (time limit, output check)
+        self.guard = guard or Guard()
+        self.spec = self.guard.guarded_spec(spec)
         self.adapter: Adapter
         self.output = "scalar"
         self.reduction = spec.reduction
         self._user_grad: NumpyAdapter | None = None
-        self._prepare()
+        try:
+            self._prepare()
+        except Stopped as exc:
+            raise LossCallError(str(exc)) from None
 
     # -- probing -----------------------------------------------------------------------------
     def _probe_stack(self) -> CaseStack:
@@ -69,6 +77,7 @@ class Evaluator:
             self.adapter = NumpyAdapter(spec.loss, spec.params, spec.grad)
             out_shape = self._probe_plain(stack)
         self._read_output(out_shape, stack)
+        check_grad(self.spec, stack)
         if isinstance(self.adapter, jax_loss.JaxAdapter):
             self.adapter.out_shape = self._out_shape
 
