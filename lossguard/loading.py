@@ -77,6 +77,9 @@ def load_target(target: str, what: str = "TARGET") -> Callable[..., Any]:
     where, _, attr = target.rpartition(":")
     if not where or not attr:
         raise TargetLoadError(bad_value(what, target, "both a module and a function name", "try losses.py:my_loss"))
+    if os.path.isdir(where) or where.startswith("."):
+        raise TargetLoadError(bad_value(what, target, "a .py file or an importable module before the colon, not a "
+                                        "folder", f"try {os.path.join(where, 'losses.py')}:{attr}"))
     if where.endswith(".py") or os.sep in where or "/" in where:
         module = _load_file(where)
     else:
@@ -95,10 +98,9 @@ def load_target(target: str, what: str = "TARGET") -> Callable[..., Any]:
     obj: Any = module
     for part in attr.split("."):
         if not hasattr(obj, part):
-            names = [n for n in dir(obj) if not n.startswith("_")]
-            raise TargetLoadError(
-                bad_value(what, target, f"a name defined in {where}", did_you_mean(part, names))
-            )
+            names = [n for n in dir(obj) if not n.startswith("_") and callable(getattr(obj, n, None))]
+            hint = did_you_mean(part, names) if names else f"{where} defines no functions; define {part} there"
+            raise TargetLoadError(bad_value(what, target, f"a name defined in {where}", hint))
         obj = getattr(obj, part)
     if not callable(obj):
         raise TargetLoadError(bad_value(what, target, "a callable", "name a function, not a value"))

@@ -5,7 +5,7 @@
 terminal, or the optional ``rich`` package is missing). The bar is transient: it disappears
 before the report is printed, so the report reads the same with and without it. When the output
 is not a terminal (piped, or in CI) and a ``heartbeat`` stream is given, a run that lasts more
-than :data:`HEARTBEAT_AFTER` seconds writes one line there every :data:`HEARTBEAT_EVERY` seconds
+than :data:`HEARTBEAT_AFTER` seconds after its first step writes one line there every :data:`HEARTBEAT_EVERY` seconds
 saying what it is doing, so a slow run is never silent.
 
 Example:
@@ -43,19 +43,23 @@ def _is_terminal(stream: IO[Any]) -> bool:
 def _heartbeat(stream: IO[Any], title: str) -> Iterator[Update]:
     """Yield an update callback; a daemon thread writes the current step to ``stream`` after
     :data:`HEARTBEAT_AFTER` seconds and then every :data:`HEARTBEAT_EVERY` seconds."""
-    now = {"label": "starting", "done": 0, "total": 0}
-    start, stop = time.monotonic(), threading.Event()
+    now: dict[str, Any] = {"label": "", "done": 0, "total": 0}
+    start, stop, begun = [time.monotonic()], threading.Event(), threading.Event()
 
     def beat() -> None:
+        begun.wait()  # counted from the first step: before it, a bad input ends with one line
         wait = HEARTBEAT_AFTER
         while not stop.wait(wait):
             of = f", {now['done']} of {now['total']} done" if now["total"] else ""
-            stream.write(f"{title}: still running: {now['label']}{of}, {time.monotonic() - start:.0f} s\n")
+            stream.write(f"{title}: still running: {now['label']}{of}, {time.monotonic() - start[0]:.0f} s\n")
             stream.flush()
             wait = HEARTBEAT_EVERY
 
     def update(label: str, done: int, total: int) -> None:
         now.update(label=label, done=done, total=total)
+        if not begun.is_set():
+            start[0] = time.monotonic()
+            begun.set()
 
     thread = threading.Thread(target=beat, name="lossguard-heartbeat", daemon=True)
     thread.start()
@@ -63,6 +67,7 @@ def _heartbeat(stream: IO[Any], title: str) -> Iterator[Update]:
         yield update
     finally:
         stop.set()
+        begun.set()
         thread.join(1.0)
 
 
