@@ -26,6 +26,7 @@ Example:
 
 from __future__ import annotations
 
+import contextvars
 import signal
 import threading
 import time
@@ -155,7 +156,8 @@ def call_in_worker(fn: Callable[[], Any], seconds: float, make: Callable[[], Bas
         except BaseException as exc:  # noqa: BLE001 - handed back to the caller's thread
             box["error"] = exc
 
-    worker = threading.Thread(target=work, name="lossguard-call", daemon=True)
+    context = contextvars.copy_context()  # the caller's context variables (replay framework …)
+    worker = threading.Thread(target=context.run, args=(work,), name="lossguard-call", daemon=True)
     worker.start()
     worker.join(None if seconds == float("inf") else seconds)
     if worker.is_alive():

@@ -318,7 +318,11 @@ class _Recorder:
 def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: Any) -> None:
     state, tr = _state(config), terminalreporter
     split = sum(len(w) > 1 for w in state.workers.values())
-    if split:
+    if split and _grouped(config):  # asked for, but xdist grouped nothing: recommending it would not help
+        tr.write_line(f"lossguard: {split} of {len(state.workers)} declared losses ran on more than one "
+                      f"worker although --dist loadgroup was given: pytest-xdist put none of their items in "
+                      f"a group here (seen with pytest 9.2), so each worker compiled their functions")
+    elif split:
         tr.write_line(f"lossguard: {split} of {len(state.workers)} declared losses ran on more than one "
                       f"worker, each compiling its functions there; --dist loadgroup keeps each on one worker")
     if not state.failures:

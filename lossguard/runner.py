@@ -12,6 +12,7 @@ from typing import Any
 
 from ._deadline import BATTERY_SECONDS, CALL_SECONDS, BatteryClock, BatteryTimeout, Stopped, limits_from
 from ._memory import enforce_memory
+from ._replay import framework
 from ._suggest import bad_value
 from .adapters._base import first_line
 from .cases import Cell
@@ -193,7 +194,8 @@ def run(
         elif clock.spent_out():
             results.append(CheckResult(name=check.name, verdict="error", summary="not run: " + clock.why()))
         else:
-            results.append(_within(clock, check, ctx))
+            with framework(ev.adapter.name):  # replay lines call the loss as the battery did
+                results.append(_within(clock, check, ctx))
     ev.settle()
     if progress is not None:
         progress("done", len(battery), len(battery))
