@@ -133,3 +133,16 @@ def negative(z, y):
 def allocates(z, y):
     """Correct, for the memory tests (any class count)."""
     return good(z, y)
+
+
+def one_argument(z):
+    """Takes no targets."""
+    return z.mean()
+
+
+def per_class_vector(z, y):
+    """Returns one value per class instead of a scalar or one per example."""
+    return jnp.mean(jax.nn.log_softmax(z), axis=0)
+
+
+NOT_CALLABLE = 3.0
