@@ -42,13 +42,15 @@ def imports() -> str:
 
 
 def call(z: str, y: str, dtype: str, y_int: bool, params: str) -> str:
-    """The call expression for literal arrays ``z`` and ``y`` (Python list text) in ``dtype``."""
+    """The call expression for arrays ``z`` and ``y`` — Python list text, or names of arrays —
+    in ``dtype``."""
     how = _FRAMEWORK.get()
     if how == "torch":
         ydt = "" if y_int else f", dtype=torch.{dtype}"
         return f"loss(torch.tensor({z}, dtype=torch.{dtype}), torch.tensor({y}{ydt}){params})"
     ydt = "" if y_int else f", dtype='{dtype}'"
-    args = f"(np.array({z}, dtype='{dtype}'), np.array({y}{ydt}){params})"
+    make = "np.asarray" if z.isidentifier() else "np.array"  # named arrays are passed as they are when they fit
+    args = f"({make}({z}, dtype='{dtype}'), {make}({y}{ydt}){params})"
     if how == "jax":  # the battery's own scope: 64-bit mode exactly when the dtype is float64
         return f"jax.enable_x64({dtype == 'float64'})(loss){args}"
     return f"loss{args}"
