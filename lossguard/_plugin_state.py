@@ -122,9 +122,11 @@ def _safely(fn: Callable[..., Any], seed: int, *args: Any, **kwargs: Any) -> Any
     """``fn(*args, **kwargs)``, or the one line saying why lossguard could not run the battery."""
     from .adapters._base import first_line
 
+    from ._deadline import Stopped
+
     try:
         return fn(*args, **kwargs)
-    except LossguardError as exc:
+    except (LossguardError, Stopped) as exc:
         return f"lossguard could not run the battery: {exc}"
     except Exception as exc:  # a defect in lossguard itself: one line, with the seed
         return f"lossguard could not run the battery ({first_line(exc)}); please report it with seed={seed}"

@@ -12,6 +12,7 @@ import re
 import sys
 
 from .commands import COMMANDS
+from ._deadline import Stopped
 from .errors import LossguardError
 
 __all__ = ["main", "build_parser", "for_the_command_line"]
@@ -46,7 +47,7 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     try:
         return int(modules[args.command].main(args))  # type: ignore[attr-defined]
-    except LossguardError as exc:
+    except (LossguardError, Stopped) as exc:  # Stopped: a call of the loss timed out or returned junk
         sys.stderr.write(f"lossguard: {for_the_command_line(str(exc))}\n")
         return 2
     except KeyboardInterrupt:

@@ -334,3 +334,15 @@ def test_json_report_keeps_its_shape_with_the_new_check(capsys, tmp_path):
     data = json.loads(path.read_text())
     assert [c["name"] for c in data["checks"]] == ["inputs-intact"]
     assert np.isfinite(data["seconds"])
+
+
+def test_compare_with_a_loss_that_returns_none_past_the_probe_is_one_line(capsys):
+    refused(capsys, "returned None", "compare", f"{H}:good", f"{H}:none_in_float64", "--kind", "categorical",
+            *QUICK)
+
+
+def test_check_with_a_loss_that_returns_none_past_the_probe_reports_the_checks_that_met_it(capsys):
+    code, out, _ = cli(capsys, "check", f"{H}:none_in_float16", "--kind", "categorical", *QUICK,
+                       "--only", "dtypes", "--only", "shift")
+    assert code == 1
+    assert "ERR   dtypes" in out and "returned None" in out and "ok    shift" in out

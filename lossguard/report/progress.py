@@ -50,6 +50,8 @@ def _heartbeat(stream: IO[Any], title: str) -> Iterator[Update]:
         begun.wait()  # counted from the first step: before it, a bad input ends with one line
         wait = HEARTBEAT_AFTER
         while not stop.wait(wait):
+            if now["total"] and now["done"] >= now["total"]:
+                continue  # the steps are over; what is left is writing the report
             of = f", {now['done']} of {now['total']} done" if now["total"] else ""
             stream.write(f"{title}: still running: {now['label']}{of}, {time.monotonic() - start[0]:.0f} s\n")
             stream.flush()

@@ -146,3 +146,17 @@ def per_class_vector(z, y):
 
 
 NOT_CALLABLE = 3.0
+
+
+def none_in_float16(z, y):
+    """Correct, except that it returns None for float16 inputs (found only past the probe)."""
+    if z.dtype == jnp.float16:
+        return None
+    return good(z, y)
+
+
+def none_in_float64(z, y):
+    """Correct, except that it returns None for float64 inputs (the probe calls in float32)."""
+    if z.dtype == jnp.float64:
+        return None
+    return good(z, y)
