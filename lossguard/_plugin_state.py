@@ -58,6 +58,11 @@ class _State:
     workers: dict[str, set[str]] = field(default_factory=dict)  # declaration → xdist workers that ran it
     adhoc: dict[tuple[Any, ...], tuple[LossSpec, Any]] = field(default_factory=dict)
 
+    def budgets(self) -> dict[str, Any]:
+        """The time and memory budgets, as keywords of :func:`lossguard.run`."""
+        return {k.replace("-", "_"): self.settings[k] for k in ("call-timeout", "time-budget", "memory-budget")
+                if k in self.settings}
+
     def resolve(self, seed: int | None, effort: str | None) -> tuple[int, str]:
         return (self.settings["seed"] if seed is None else seed,
                 self.settings["effort"] if effort is None else effort)
@@ -81,10 +86,10 @@ class _State:
         if whole:
             wanted += [i.check for i in mine if i.check not in entry.results and i.check != check]
         if entry.evaluator is None:
-            entry.evaluator = _safely(_new_evaluator, seed, bat.spec)
+            entry.evaluator = _safely(_new_evaluator, seed, bat.spec, self.budgets().get("call_timeout"))
         if isinstance(entry.evaluator, str):
             return entry.evaluator  # the loss could not even be probed: every item says so
-        result = _safely(_run, seed, bat.spec, seed, effort, wanted, entry.evaluator)
+        result = _safely(_run, seed, bat.spec, seed, effort, wanted, entry.evaluator, **self.budgets())
         for name in wanted:
             entry.results[name] = result if isinstance(result, str) else result.check(name)
         if whole:  # every item of the declaration is answered: its Evaluator is no longer needed
@@ -98,25 +103,30 @@ class _State:
         return entry.results[check]
 
 
-def _new_evaluator(spec: LossSpec) -> Any:
+def _new_evaluator(spec: LossSpec, call_timeout: float | None = None) -> Any:
+    from ._deadline import Limits
+    from ._guard import Guard
     from .evaluate import Evaluator
 
-    return Evaluator(spec)
+    return Evaluator(spec, Guard(Limits(call_seconds=call_timeout)) if call_timeout else None)
 
 
-def _run(spec: LossSpec, seed: int, effort: str, only: list[str] | None, evaluator: Any = None) -> Any:
+def _run(spec: LossSpec, seed: int, effort: str, only: list[str] | None, evaluator: Any = None,
+         **budgets: Any) -> Any:
     from .runner import run
 
-    return run(spec, seed=seed, effort=effort, only=only, evaluator=evaluator)
+    return run(spec, seed=seed, effort=effort, only=only, evaluator=evaluator, **budgets)
 
 
 def _safely(fn: Callable[..., Any], seed: int, *args: Any, **kwargs: Any) -> Any:
     """``fn(*args, **kwargs)``, or the one line saying why lossguard could not run the battery."""
     from .adapters._base import first_line
 
+    from ._deadline import Stopped
+
     try:
         return fn(*args, **kwargs)
-    except LossguardError as exc:
+    except (LossguardError, Stopped) as exc:
         return f"lossguard could not run the battery: {exc}"
     except Exception as exc:  # a defect in lossguard itself: one line, with the seed
         return f"lossguard could not run the battery ({first_line(exc)}); please report it with seed={seed}"

@@ -27,6 +27,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from ._deadline import Stopped
 from .cases import Cell, random_stack, shape_menu
 
 if TYPE_CHECKING:
@@ -62,7 +63,7 @@ def output_shape(ev: Evaluator, cell: Cell) -> tuple[int, ...] | None:
         with np.errstate(all="ignore"):
             out: Any = spec.loss(stack.predictions[0], stack.targets[0], **spec.params)
         return tuple(np.shape(np.asarray(out)))
-    except Exception:  # the loss fails at this shape: the checks that use it say so
+    except (Exception, Stopped):  # the loss fails (or times out) at this shape: the checks that use it say so
         return None
 
 

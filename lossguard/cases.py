@@ -24,12 +24,12 @@ import numpy as np
 
 from ._budget import case_count
 from .ladders import PATTERNS, ladder_rows, magnitudes, mixed_scales, thin_rungs
-from .options import EFFORTS
+from .effort import EFFORTS, Effort, get_effort
 from .spec import LossSpec
 
 __all__ = ["Cell", "CaseStack", "EFFORTS", "shape_menu", "cases_per_cell", "target_domain",
            "random_stack", "ladder_stack", "ladder_case_count", "to_inputs", "concat", "draw_targets",
-           "LADDER_LEAST"]
+           "LADDER_LEAST", "split_cell", "halves", "take_rows", "join"]
 
 #: Fewest cases the shared ladder is packed into at the largest shapes: one, holding every
 #: (pattern, magnitude) pair. Its comparisons are allowed the rounding of its largest |z| (1e4);
@@ -83,22 +83,20 @@ class CaseStack:
         return self.notes[k] if self.notes and k < len(self.notes) else ""
 
 
-def shape_menu(spec: LossSpec, effort: str = "default") -> list[Cell]:
-    """The few shapes a battery uses (a class count fixed by the spec is honoured)."""
+def shape_menu(spec: LossSpec, effort: str | Effort = "default") -> list[Cell]:
+    """The few shapes a battery uses (a class count fixed by the spec is honoured): the first
+    ``Effort.menu_cells`` of the menu."""
     if spec.kind == "binary":
-        cells = [Cell(16), Cell(8, d=3)]
-        if effort == "thorough":
-            cells.append(Cell(64, d=5))
+        cells = [Cell(16), Cell(8, d=3), Cell(64, d=5)]
     else:
         c_small, c_large = (spec.classes, spec.classes) if spec.classes else (3, 10)
-        cells = [Cell(8, c_small), Cell(16, c_large)]
-        if effort == "thorough":
-            cells += [Cell(64, c_large), Cell(5, spec.classes or 2)]
-    return cells[:1] if effort == "quick" else cells
+        cells = [Cell(8, c_small), Cell(16, c_large), Cell(64, c_large), Cell(5, spec.classes or 2)]
+    return cells[:get_effort(effort).menu_cells]
 
 
-def cases_per_cell(effort: str = "default", cell: Cell | None = None) -> int:
-    """How many random cases each cell gets: 16, 48 or 256 by effort, fewer for a large ``cell``.
+def cases_per_cell(effort: str | Effort = "default", cell: Cell | None = None) -> int:
+    """How many random cases each cell gets: ``Effort.cases_per_cell`` (16, 48 or 256), fewer for
+    a large ``cell``.
 
     With ``cell``, :func:`lossguard._budget.case_count` bounds the count by the cell's size (the
     menu's shapes keep the full count; a (4096, 1000) cell gets 2).
@@ -107,7 +105,7 @@ def cases_per_cell(effort: str = "default", cell: Cell | None = None) -> int:
         >>> cases_per_cell("default"), cases_per_cell("default", Cell(4096, 1000))
         (48, 2)
     """
-    want = {"quick": 16, "default": 48, "thorough": 256}[effort]
+    want = get_effort(effort).cases_per_cell
     return want if cell is None else case_count(want, cell.elements())
 
 
@@ -313,3 +311,28 @@ def concat(stacks: Sequence[CaseStack]) -> CaseStack:
         first.cell,
         [n for s in stacks for n in (s.notes or [""] * len(s))],
     )
+
+
+# ------------------------------------------------------------------------------ rows of cases
+
+
+def split_cell(cells: list[Cell]) -> Cell:
+    """The menu cell whose halves are evaluated: the one with the most rows."""
+    return max(cells, key=lambda c: c.n)
+
+
+def halves(cell: Cell) -> Cell:
+    """The cell of half the rows."""
+    return Cell(cell.n // 2, cell.c, cell.d)
+
+
+def take_rows(stack: CaseStack, idx: np.ndarray, cell: Cell | None = None) -> CaseStack:
+    """Rows ``idx`` (K, M) of every case (M may differ from N: then pass the new ``cell``)."""
+    k = np.arange(len(stack))[:, None]
+    return CaseStack(stack.predictions[k, idx], stack.targets[k, idx], cell or stack.cell, list(stack.notes))
+
+
+def join(a: CaseStack, b: CaseStack, cell: Cell) -> CaseStack:
+    """Rows of ``a`` then rows of ``b``, case by case."""
+    return CaseStack(np.concatenate([a.predictions, b.predictions], axis=1),
+                     np.concatenate([a.targets, b.targets], axis=1), cell, list(a.notes))

@@ -8,12 +8,20 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import re
 import sys
 
 from .commands import COMMANDS
+from ._deadline import Stopped
 from .errors import LossguardError
 
-__all__ = ["main", "build_parser"]
+__all__ = ["main", "build_parser", "for_the_command_line"]
+
+
+def for_the_command_line(message: str) -> str:
+    """A library message in the command's own syntax: the library's hint "try passing gamma=2.0"
+    (a keyword of ``declare``'s ``params``) becomes "try --param gamma=2.0"."""
+    return re.sub(r"\btry passing (\w+)=", r"try --param \1=", message)
 
 
 def build_parser() -> tuple[argparse.ArgumentParser, dict[str, object]]:
@@ -39,8 +47,8 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     try:
         return int(modules[args.command].main(args))  # type: ignore[attr-defined]
-    except LossguardError as exc:
-        sys.stderr.write(f"lossguard: {exc}\n")
+    except (LossguardError, Stopped) as exc:  # Stopped: a call of the loss timed out or returned junk
+        sys.stderr.write(f"lossguard: {for_the_command_line(str(exc))}\n")
         return 2
     except KeyboardInterrupt:
         sys.stderr.write("lossguard: interrupted\n")

@@ -42,11 +42,12 @@ from typing import Any
 
 import numpy as np
 
-from ._suggest import bad_value, did_you_mean
-from .cases import EFFORTS, CaseStack, Cell
+from ._suggest import bad_value
+from .cases import CaseStack, Cell
+from .effort import validate_run
 from .checks._base import Context
 from .checks._compare import Mismatch, examples_from
-from .checks.reference import case_scale, gradient_term_scale
+from .checks._scales import case_scale, gradient_term_scale
 from .errors import SpecError
 from .evaluate import Evaluator
 from .result import CAUTION, CheckResult, Example
@@ -226,13 +227,6 @@ class _Shrinker:
         return best, self.failing(best)[1], n, best.cell.n
 
 
-def _validate(seed: Any, effort: Any) -> None:
-    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        raise SpecError(bad_value("seed", seed, "a non-negative integer", "try seed=0"))
-    if effort not in EFFORTS:
-        raise SpecError(bad_value("effort", effort, "quick, default or thorough", did_you_mean(str(effort), EFFORTS)))
-
-
 def compare(
     old: LossSpec,
     new: LossSpec,
@@ -260,7 +254,7 @@ def compare(
     """
     from .runner import versions
 
-    _validate(seed, effort)
+    validate_run(seed, effort)
     t0 = time.perf_counter()
     ev_old, ev_new = Evaluator(old), Evaluator(new)
     if ev_old.output != ev_new.output:

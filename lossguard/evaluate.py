@@ -12,6 +12,9 @@ from typing import Any
 
 import numpy as np
 
+from ._deadline import Stopped
+from ._guard import Guard
+from ._outputs import check_grad
 from .adapters import jax_loss
 from .adapters._base import Adapter, first_line
 from .adapters.numpy_loss import NumpyAdapter
@@ -39,8 +42,10 @@ class Evaluator:
         reduction: ``"mean"``, ``"sum"`` (scalar outputs) or ``"none"`` (per-example).
     """
 
-    def __init__(self, spec: LossSpec) -> None:
-        self.spec = spec
+    def __init__(self, spec: LossSpec, guard: Guard | None = None) -> None:
+        #: every call of the loss and grad goes through the guard (time limit, output check)
+        self.guard = guard or Guard()
+        self.spec = self.guard.guarded_spec(spec)
         self.adapter: Adapter
         self.output = "scalar"
         self.reduction = spec.reduction
@@ -48,9 +53,11 @@ class Evaluator:
         #: why JAX could not trace the loss (one line), when it fell back to plain calls
         self.untraced = ""
         self._grid: str | None | bool = False  # the rounding probe's answer; False: not yet probed
-        #: menu shapes left out of the battery, with the reason (:func:`lossguard._shapes.survey`)
-        self.left_out: dict[Cell, str] = {}
-        self._prepare()
+        self._left_out: dict[Cell, str] | None = None  # None: the shapes not yet surveyed
+        try:
+            self._prepare()
+        except Stopped as exc:
+            raise LossCallError(str(exc)) from None
 
     # -- probing -----------------------------------------------------------------------------
     def _probe_stack(self) -> CaseStack:
@@ -77,7 +84,7 @@ class Evaluator:
             out_shape = self._probe_plain(stack)
             self.untraced = why_not_traced(spec.loss, spec.params, stack.predictions[0], stack.targets[0])
         self._read_output(out_shape, stack)
-        self.left_out = survey(self)  # shapes whose output reads differently: kept out of the battery
+        check_grad(self.spec, stack)
         if isinstance(self.adapter, jax_loss.JaxAdapter):
             self.adapter.out_shape = self._out_shape
 
@@ -201,15 +208,25 @@ class Evaluator:
         """The coarser grid every value and gradient of a float64 call lies on (``None``: float64
         rounding), probed once on random cases (:func:`lossguard._precision.grid_of`)."""
         if self._grid is False:
+            self._grid = None  # probed once: a probe the battery's budget interrupts is not retried
             stack = random_stack(self.spec, shape_menu(self.spec, "quick")[0], np.random.default_rng(1), EVIDENCE)
             try:
                 if self.has_gradient:
                     self._grid = grid_of(*self.value_and_grad(stack, "float64"))
                 else:
                     self._grid = grid_of(self.values(stack, "float64"))
-            except Exception:  # a loss that cannot be called here is reported by the checks
+            except (Exception, Stopped):  # a loss that cannot be called (in time) here: the checks say so
                 self._grid = None
         return self._grid  # type: ignore[return-value]
+
+    @property
+    def left_out(self) -> dict[Cell, str]:
+        """Menu shapes left out of the battery, with the reason: those whose output does not read
+        as :attr:`output` (:func:`lossguard._shapes.survey`), surveyed once on first use."""
+        if self._left_out is None:
+            self._left_out = {}  # surveyed once: a survey the battery's budget interrupts is not retried
+            self._left_out = survey(self)
+        return self._left_out
 
     def prepare(self, plan: list[tuple[str, str, Cell]]) -> None:
         """Start compiling what a battery will ask for — (operation, dtype, shape) with operation

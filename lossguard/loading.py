@@ -16,10 +16,10 @@ from .errors import TargetLoadError
 __all__ = ["load_target"]
 
 
-def _load_file(path: str) -> Any:
+def _load_file(path: str, what: str = "TARGET") -> Any:
     if not os.path.isfile(path):
         raise TargetLoadError(
-            bad_value("TARGET", path, "an existing .py file", "check the path (relative to the current folder)")
+            bad_value(what, path, "an existing .py file", "check the path (relative to the current folder)")
         )
     abspath = os.path.abspath(path)
     # A name unique to the file, so two files called losses.py never collide in sys.modules.
@@ -29,7 +29,7 @@ def _load_file(path: str) -> Any:
         return sys.modules[modname]
     spec = importlib.util.spec_from_file_location(modname, abspath)
     if spec is None or spec.loader is None:
-        raise TargetLoadError(bad_value("TARGET", path, "a Python source file", "give a .py file"))
+        raise TargetLoadError(bad_value(what, path, "a Python source file", "give a .py file"))
     module = importlib.util.module_from_spec(spec)
     folder = os.path.dirname(abspath)
     added = folder not in sys.path
@@ -41,7 +41,7 @@ def _load_file(path: str) -> Any:
     except Exception as exc:  # the user's module failed to import: say so in one line
         sys.modules.pop(modname, None)
         raise TargetLoadError(
-            bad_value("TARGET", path, "a module that imports cleanly",
+            bad_value(what, path, "a module that imports cleanly",
                       f"fix the error it raised on import: {type(exc).__name__}: {exc}")
         ) from None
     finally:
@@ -77,8 +77,11 @@ def load_target(target: str, what: str = "TARGET") -> Callable[..., Any]:
     where, _, attr = target.rpartition(":")
     if not where or not attr:
         raise TargetLoadError(bad_value(what, target, "both a module and a function name", "try losses.py:my_loss"))
+    if os.path.isdir(where) or where.startswith("."):
+        raise TargetLoadError(bad_value(what, target, "a .py file or an importable module before the colon, not a "
+                                        "folder", f"try {os.path.join(where, 'losses.py')}:{attr}"))
     if where.endswith(".py") or os.sep in where or "/" in where:
-        module = _load_file(where)
+        module = _load_file(where, what)
     else:
         try:
             module = importlib.import_module(where)
@@ -95,10 +98,9 @@ def load_target(target: str, what: str = "TARGET") -> Callable[..., Any]:
     obj: Any = module
     for part in attr.split("."):
         if not hasattr(obj, part):
-            names = [n for n in dir(obj) if not n.startswith("_")]
-            raise TargetLoadError(
-                bad_value(what, target, f"a name defined in {where}", did_you_mean(part, names))
-            )
+            names = [n for n in dir(obj) if not n.startswith("_") and callable(getattr(obj, n, None))]
+            hint = did_you_mean(part, names) if names else f"{where} defines no functions; define {part} there"
+            raise TargetLoadError(bad_value(what, target, f"a name defined in {where}", hint))
         obj = getattr(obj, part)
     if not callable(obj):
         raise TargetLoadError(bad_value(what, target, "a callable", "name a function, not a value"))

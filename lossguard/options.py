@@ -10,10 +10,10 @@ import argparse
 from dataclasses import dataclass
 from typing import Any
 
+from .effort import EFFORTS
+
 __all__ = ["EFFORTS", "Setting", "SETTINGS", "add_to_argparse"]
 
-#: Effort profiles: quick (a pre-commit hook), default (CI), thorough (before a release).
-EFFORTS = ("quick", "default", "thorough")
 
 
 @dataclass(frozen=True)
@@ -37,7 +37,12 @@ class Setting:
     @property
     def ini(self) -> str:
         """pytest ini key (``lossguard_seed``)."""
-        return f"lossguard_{self.name}"
+        return f"lossguard_{self.key}"
+
+    @property
+    def key(self) -> str:
+        """The Python name (``call_timeout``): keyword of :func:`lossguard.run`, argparse dest."""
+        return self.name.replace("-", "_")
 
     def parse(self, text: Any) -> Any:
         value = self.type(text)
@@ -50,6 +55,11 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("seed", int, 0, "seed for every random choice; the same seed gives the same report"),
     Setting("effort", str, "default", "how hard to look: quick (pre-commit), default (CI), thorough (release)",
             EFFORTS),
+    Setting("call-timeout", float, 60.0, "seconds one call of the loss may take before its check reports an error "
+            "(a JAX loss: its tracing, not XLA's compilation)"),
+    Setting("time-budget", float, 300.0, "seconds the whole battery may take; checks left then are reported as not run"),
+    Setting("memory-budget", float, None, "GiB the largest check may need (estimated from the shapes before "
+            "running); default half the machine's memory"),
 )
 
 

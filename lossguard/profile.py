@@ -1,6 +1,6 @@
 """Precision profile: how accurate a loss is, in each float dtype, as its logits grow.
 
-Notation and shapes: cases of :data:`PROFILE_ROWS` rows with the battery's class count (class
+Notation and shapes: cases of ``Effort.profile_rows`` rows with the battery's class count (class
 axis last); at each logit magnitude M of :func:`~lossguard.ladders.profile_magnitudes` four cases
 are built (rows confidently right, confidently wrong, all equal, one huge logit; see
 :mod:`lossguard.ladders`), moved onto values every dtype that holds M represents exactly, and
@@ -46,27 +46,22 @@ import numpy as np
 
 from .cases import CaseStack, Cell, concat, ladder_stack, shape_menu
 from .checks._base import Context
-from .checks.finite import ACCUMULATOR, reduced_fits, reference_batch
-from .checks.reference import case_scale, gradient_term_scale
-from ._suggest import bad_value, did_you_mean
-from .errors import SpecError
+from .checks._extremes import ACCUMULATOR
+from .checks._finite_oracle import reduced_fits
+from .checks._reference_batch import reference_batch
+from .checks._scales import case_scale, gradient_term_scale
+from .effort import validate_run
 from .evaluate import Evaluator, NoGradient
 from .ladders import common_grid, largest_finite, profile_magnitudes, round_down, ulp
 from .spec import LossSpec
 from .tolerance import DTYPES, op_count, rounding_allowance
 
-from ._mp_oracle import _MP, mp_reference_stack
+from ._mp_oracle import mp_available, mp_reference_stack
 
 
 __all__ = ["PROFILE_PATTERNS", "DtypeProfile", "Profile", "profile", "mp_available", "mp_reference_stack"]
 
 PROFILE_PATTERNS = ("right", "wrong", "equal", "huge")
-#: Rows per case at the default effort (binary: twice as many elements); few, since the oracle
-#: runs in mpmath.
-PROFILE_ROWS = 4
-#: Rows per case by effort: more rows at each (magnitude, pattern) give the random entries of a
-#: case more chances to meet a bad spot; the mpmath oracle's time grows with them.
-ROWS_BY_EFFORT = {"quick": 2, "default": PROFILE_ROWS, "thorough": 16}
 
 
 @dataclass
@@ -256,19 +251,18 @@ def profile(
         evaluator: reuse an evaluator (and its compilations).
         target: how the loss was named (for the report).
         dps: significant digits of the mpmath oracle.
-        effort: rows per case, :data:`ROWS_BY_EFFORT` (quick 2, default 4, thorough 16).
+        effort: rows per case, ``Effort.profile_rows`` (quick 2, default 4, thorough 16; binary:
+            twice as many elements): more rows at each (magnitude, pattern) give the random entries
+            of a case more chances to meet a bad spot; the mpmath oracle's time grows with them.
 
     Returns:
         A :class:`Profile`; ``render_profile`` prints it, ``lossguard profile --png`` plots it.
     """
-    if effort not in ROWS_BY_EFFORT:
-        raise SpecError(bad_value("effort", effort, "quick, default or thorough",
-                                  did_you_mean(str(effort), ROWS_BY_EFFORT)))
+    rows = validate_run(seed, effort).profile_rows
     t0 = time.perf_counter()
     dtypes = tuple(d for d in DTYPES if d in dtypes)
     ev = evaluator or Evaluator(spec)
     first = shape_menu(spec, "quick")[0]
-    rows = ROWS_BY_EFFORT[effort]
     cell = Cell(rows, first.c) if first.c is not None else Cell(2 * rows)
     ctx = Context(spec=spec, evaluator=ev, seed=seed, effort="quick", cells_override=(cell,))
     stack, holders, mags = _cases(ctx, dtypes)
@@ -283,8 +277,3 @@ def profile(
         prof.rows.append(_dtype_row(ctx, sub, mags[idx], parts, d, self_oracle))
     prof.seconds = time.perf_counter() - t0
     return prof
-
-
-def mp_available() -> bool:
-    """Whether mpmath can be imported (it is an optional dependency)."""
-    return _MP is not None

@@ -249,7 +249,7 @@ def pytest_addoption(parser: Any) -> None:
     group = parser.getgroup("lossguard", "lossguard: numerical checks of loss functions")
     for s in SETTINGS:
         extra = f"; one of {', '.join(s.choices)}" if s.choices else ""
-        group.addoption(s.pytest_flag, dest=s.ini, default=None, metavar=s.name.upper(),
+        group.addoption(s.pytest_flag, dest=s.ini, default=None, metavar=s.key.upper(),
                         help=f"{s.help}{extra}; default {s.default!r}; ini key {s.ini}")
         parser.addini(s.ini, help=f"lossguard: {s.help}{extra}", default="")
 
@@ -272,6 +272,10 @@ def _read_settings(config: Any) -> tuple[dict[str, Any], dict[str, str]]:
         sources[s.name] = source
     if values.get("seed", 0) < 0:
         raise pytest.UsageError(f"{sources['seed']}={values['seed']!r}: expected a non-negative integer; try 0")
+    for s in SETTINGS:
+        if s.type is float and values[s.name] is not None and not values[s.name] > 0:
+            raise pytest.UsageError(f"{sources[s.name]}={values[s.name]!r}: expected a positive number; "
+                                    f"try {s.default if s.default is not None else 4}")
     return values, sources
 
 
@@ -315,7 +319,11 @@ class _Recorder:
 def pytest_terminal_summary(terminalreporter: Any, exitstatus: int, config: Any) -> None:
     state, tr = _state(config), terminalreporter
     split = sum(len(w) > 1 for w in state.workers.values())
-    if split:
+    if split and _grouped(config):  # asked for, but xdist grouped nothing: recommending it would not help
+        tr.write_line(f"lossguard: {split} of {len(state.workers)} declared losses ran on more than one "
+                      f"worker although --dist loadgroup was given: pytest-xdist put none of their items in "
+                      f"a group here (seen with pytest 9.2), so each worker compiled their functions")
+    elif split:
         tr.write_line(f"lossguard: {split} of {len(state.workers)} declared losses ran on more than one "
                       f"worker, each compiling its functions there; --dist loadgroup keeps each on one worker")
     if state.declared or state.adhoc:  # a run that used lossguard says what its passes mean
@@ -355,7 +363,7 @@ def run_battery(request: Any) -> Callable[..., Any]:
         chosen = list(only) if only is not None else None
         key = (id(spec), s, e, tuple(chosen) if chosen is not None else None)
         if key not in state.adhoc or state.adhoc[key][0] is not spec:
-            state.adhoc[key] = (spec, _safely(_run, s, spec, s, e, chosen))
+            state.adhoc[key] = (spec, _safely(_run, s, spec, s, e, chosen, **state.budgets()))
         result = state.adhoc[key][1]
         if isinstance(result, str):
             pytest.fail(result, pytrace=False)

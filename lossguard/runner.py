@@ -10,9 +10,13 @@ import time
 from collections.abc import Sequence
 from typing import Any
 
-from ._suggest import bad_value, did_you_mean
+from ._deadline import BATTERY_SECONDS, CALL_SECONDS, BatteryClock, BatteryTimeout, Stopped, limits_from
+from ._memory import enforce_memory
+from ._replay import framework
+from ._suggest import bad_value
 from .adapters._base import first_line
-from .cases import EFFORTS, Cell
+from .cases import Cell
+from .effort import validate_run
 from .checks import Context, select_checks
 from .errors import LossCallError, SpecError
 from .evaluate import Evaluator, NoGradient
@@ -39,31 +43,30 @@ def versions() -> dict[str, str]:
     }
 
 
-def _validate(seed: Any, effort: Any) -> None:
-    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        raise SpecError(bad_value("seed", seed, "a non-negative integer", "try seed=0"))
-    if effort not in EFFORTS:
-        raise SpecError(bad_value("effort", effort, "quick, default or thorough", did_you_mean(str(effort), EFFORTS)))
-
-
 def run_check(check: Any, ctx: Context) -> CheckResult:
     """Run one check; whatever the user's loss does, come back with a verdict, not a traceback."""
     t0 = time.perf_counter()
+    guard = getattr(ctx.evaluator, "guard", None)
+    if guard is not None:
+        guard.check = check.name  # named in a timeout's message
     try:
         result = check.run(ctx)
-    except LossCallError as exc:
+    except (LossCallError, Stopped) as exc:  # Stopped: a call past its time limit, or a bad output
         result = CheckResult(name=check.name, verdict="error", summary=str(exc))
-    except NoGradient:
+    except NoGradient:  # as the gradient check does: nothing to judge without a gradient
         result = CheckResult(
-            name=check.name, verdict="error",
-            summary=("no gradient oracle: the loss is not JAX-traceable and no grad was declared; "
-                     f"declare grad=..., or skip {check.name}"),
+            name=check.name, verdict="skip",
+            summary=("needs a gradient: the loss is not JAX-traceable and no grad was declared; "
+                     f"declare grad=... (--grad) to run {check.name}"),
         )
     except Exception as exc:  # a defect in lossguard itself: say so in one line
         result = CheckResult(
             name=check.name, verdict="error",
             summary=f"lossguard could not complete this check ({first_line(exc)}); please report it with the seed",
         )
+    finally:
+        if guard is not None:
+            guard.check = ""
     if not result.hint and not result.ok:
         result.hint = check.skip_hint
     if result.verdict == "pass" and result.cases == 0:  # nothing judged: not a pass
@@ -89,7 +92,35 @@ def _compile_ahead(ctx: Context, checks: list[Any]) -> None:
     rank = {"float64": 0, "float16": 1, "bfloat16": 2, "float32": 3}
     plan.sort(key=lambda job: (job[0] != "vg", rank.get(job[1], 4)))
     if plan:
-        ctx.evaluator.prepare(plan)
+        guard = ctx.evaluator.guard
+        guard.phase = "while tracing the checks' functions ahead of them"
+        try:
+            ctx.evaluator.prepare(plan)
+        except Stopped:  # a call timed out while tracing: the checks that need it will say so
+            pass
+        finally:
+            guard.phase = "outside any check"
+
+
+def _probe(spec: LossSpec, limits: Any, clock: BatteryClock) -> Evaluator:
+    """A new evaluator (its probe calls bounded by ``limits`` and the battery's clock)."""
+    from ._guard import Guard
+
+    try:
+        return clock.run(lambda: Evaluator(spec, Guard(limits)), "the probe")
+    except BatteryTimeout:
+        raise LossCallError(f"loss={spec.name}: probing it took longer than the battery's time budget; "
+                            f"{clock.why().split('; ', 1)[1]}") from None
+
+
+def _within(clock: BatteryClock, check: Any, ctx: Context) -> CheckResult:
+    """:func:`run_check` inside what is left of the battery's time budget."""
+    t0 = time.perf_counter()
+    try:
+        return clock.run(lambda: run_check(check, ctx), check.name)
+    except BatteryTimeout:
+        return CheckResult(name=check.name, verdict="error", summary="stopped: " + clock.why(),
+                           seconds=time.perf_counter() - t0)
 
 
 def run(
@@ -102,6 +133,9 @@ def run(
     evaluator: Evaluator | None = None,
     cells: Sequence[Cell] | None = None,
     progress: Any = None,
+    call_timeout: float = CALL_SECONDS,
+    time_budget: float = BATTERY_SECONDS,
+    memory_budget: float | None = None,
 ) -> Result:
     """Run the battery of checks that fits ``spec``.
 
@@ -115,12 +149,21 @@ def run(
         cells: use these shapes instead of the shape menu (``None``: the menu for ``effort``).
         progress: optional ``progress(check_name, done, total)`` called before each check
             (and once more with ``done == total``); see :mod:`lossguard.report.progress`.
+        call_timeout: seconds one call of the loss may take (its Python code; for a JAX loss
+            its tracing, not XLA's compilation); past it the check reports an error naming the
+            call, and the battery goes on. Default 60.
+        time_budget: seconds the whole battery may take; checks left when it runs out are
+            reported as not run. Default 300.
+        memory_budget: GiB the battery's largest check may need, by an estimate from the shapes
+            made before anything runs; ``None``: half the machine's memory
+            (:func:`lossguard._memory.default_budget`).
 
     Returns:
         A :class:`~lossguard.result.Result`; ``result.ok`` is True when nothing failed.
 
     Raises:
         SpecError, CheckNameError: bad arguments. LossCallError: the loss cannot be called at all.
+        MemoryBudgetError: a check would need more memory than ``memory_budget``.
 
     Example:
         >>> import jax
@@ -130,22 +173,40 @@ def run(
         >>> run(declare(ce, kind="categorical", reference="categorical_ce"), effort="quick").ok
         True
     """
-    _validate(seed, effort)
+    validate_run(seed, effort)
+    limits = limits_from(call_timeout, time_budget)
     t0 = time.perf_counter()
     battery = select_checks(spec, only)
-    ev = evaluator or Evaluator(spec)
+    if not any(reason is None for _, reason in battery):
+        raise SpecError(bad_value("checks", [c.name for c, _ in battery], "at least one check to run",
+                                  "drop the --skip or --only that turns off every selected check"))
+    clock = BatteryClock(limits.battery_seconds)
+    ev = evaluator or _probe(spec, limits, clock)
+    ev.guard.limits = limits
     ctx = Context(spec=spec, evaluator=ev, seed=seed, effort=effort,
                   cells_override=tuple(cells) if cells else None)
-    _compile_ahead(ctx, [check for check, reason in battery if reason is None])
-    ev.rounding_grid()  # the one-time precision probe, before any check counts its evaluations
+    try:  # reading the output at every menu shape calls the loss: inside the budget too
+        clock.run(lambda: ev.left_out, "reading the loss's output at every shape")
+    except BatteryTimeout:
+        pass  # every check is then reported as not run
+    enforce_memory(ctx, [check.name for check, reason in battery if reason is None], memory_budget)
+    try:  # tracing runs the loss's code: inside the budget too
+        # the one-time precision probe comes before any check counts its evaluations
+        clock.run(lambda: (_compile_ahead(ctx, [check for check, reason in battery if reason is None]),
+                           ev.rounding_grid()), "tracing ahead of the checks")
+    except BatteryTimeout:
+        pass  # every check is then reported as not run
     results = []
     for i, (check, reason) in enumerate(battery):
         if progress is not None:
             progress(check.name, i, len(battery))
         if reason is not None:
             results.append(CheckResult(name=check.name, verdict="skip", summary=reason))
-            continue
-        results.append(run_check(check, ctx))
+        elif clock.spent_out():
+            results.append(CheckResult(name=check.name, verdict="error", summary="not run: " + clock.why()))
+        else:
+            with framework(ev.adapter.name):  # replay lines call the loss as the battery did
+                results.append(_within(clock, check, ctx))
     ev.settle()
     if progress is not None:
         progress("done", len(battery), len(battery))

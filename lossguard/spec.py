@@ -117,6 +117,34 @@ def _check_signature(fn: Callable[..., Any], what: str, params: Mapping[str, Any
         ) from None
 
 
+def _check_classes(kind: str, ignore_label: int | None, classes: int | None, params: Mapping[str, Any]) -> int | None:
+    """Validate the ignore label and the class count; return the class count, read from a
+    per-class parameter (a list of one value per class) when not given."""
+    if ignore_label is not None:
+        if kind != "categorical":
+            raise SpecError(
+                bad_value("ignore_label", ignore_label, "no ignore label for kind=" + repr(kind),
+                          "declare kind='categorical' or drop the ignore label")
+            )
+        if isinstance(ignore_label, bool) or not isinstance(ignore_label, int):
+            raise SpecError(bad_value("ignore_label", ignore_label, "an integer", "try -100"))
+    if classes is not None:
+        if isinstance(classes, bool) or not isinstance(classes, int) or classes < 2:
+            raise SpecError(bad_value("classes", classes, "an integer >= 2", "try classes=10"))
+        if kind == "binary":
+            raise SpecError(bad_value("classes", classes, "no class count for kind='binary'",
+                                      "drop it, or declare kind='categorical'"))
+        if ignore_label is not None and 0 <= ignore_label < classes:
+            raise SpecError(bad_value("ignore_label", ignore_label, f"a label outside [0, {classes})",
+                                      "try -100"))
+    if classes is None and kind != "binary":
+        # a per-class parameter (a list of one value per class) fixes the class count
+        lengths = {len(v) for v in params.values() if isinstance(v, (list, tuple))}
+        if len(lengths) == 1 and min(lengths) >= 2:
+            classes = lengths.pop()
+    return classes
+
+
 def declare(
     loss: Callable[..., Any],
     *,
@@ -183,29 +211,8 @@ def declare(
     params = dict(params or {})
     for key in params:
         if not isinstance(key, str) or not key.isidentifier():
-            raise SpecError(bad_value("param", key, "a Python identifier", "try --param gamma=2.0"))
-    if ignore_label is not None:
-        if kind != "categorical":
-            raise SpecError(
-                bad_value("ignore_label", ignore_label, "no ignore label for kind=" + repr(kind),
-                          "declare kind='categorical' or drop the ignore label")
-            )
-        if isinstance(ignore_label, bool) or not isinstance(ignore_label, int):
-            raise SpecError(bad_value("ignore_label", ignore_label, "an integer", "try -100"))
-    if classes is not None:
-        if isinstance(classes, bool) or not isinstance(classes, int) or classes < 2:
-            raise SpecError(bad_value("classes", classes, "an integer >= 2", "try classes=10"))
-        if kind == "binary":
-            raise SpecError(bad_value("classes", classes, "no class count for kind='binary'",
-                                      "drop it, or declare kind='categorical'"))
-        if ignore_label is not None and 0 <= ignore_label < classes:
-            raise SpecError(bad_value("ignore_label", ignore_label, f"a label outside [0, {classes})",
-                                      "try -100"))
-    if classes is None and kind != "binary":
-        # a per-class parameter (a list of one value per class) fixes the class count
-        lengths = {len(v) for v in params.values() if isinstance(v, (list, tuple))}
-        if len(lengths) == 1 and min(lengths) >= 2:
-            classes = lengths.pop()
+            raise SpecError(bad_value("params", key, "keys that are Python identifiers", "try passing gamma=2.0"))
+    classes = _check_classes(kind, ignore_label, classes, params)
     if grad is not None and not callable(grad):
         raise SpecError(bad_value("grad", grad, "a callable grad(predictions, targets, **params)",
                                   "pass the function itself"))

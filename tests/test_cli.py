@@ -77,3 +77,14 @@ def test_references_and_checks_listings(capsys):
 def test_installed_command_runs():
     proc = subprocess.run([sys.executable, "-m", "lossguard", "checks"], capture_output=True, text=True)
     assert proc.returncode == 0 and "finite" in proc.stdout
+
+
+def test_library_hints_are_shown_in_the_command_line_syntax() -> None:
+    from lossguard.cli import for_the_command_line
+    from lossguard.errors import SpecError
+    from lossguard.spec import declare
+
+    with pytest.raises(SpecError) as info:  # the library speaks of params, in Python
+        declare(lambda z, y, **p: z.sum(), kind="categorical", params={"not an identifier": 1})
+    assert "try passing gamma=" in str(info.value) and "--param" not in str(info.value)
+    assert "try --param gamma=" in for_the_command_line(str(info.value))

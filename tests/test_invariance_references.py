@@ -101,7 +101,8 @@ def test_expected_checks_per_declaration():
                        reference="categorical_ce", params={"weight": [1.0, 2.0, 3.0]})
     reasons = {c.name: why for c, why in select_checks(weighted)}
     # class weights break class-permutation equivariance and properness: both become opt-in
-    assert reasons["classes"] == reasons["proper"] == "optional: turn on with expect"
+    assert reasons["classes"] == "optional: turn on with --expect classes (expect=['classes'] in Python)"
+    assert reasons["proper"] == "optional: turn on with --expect proper (expect=['proper'] in Python)"
     no_ref = declare(mean_of("categorical_ce"), kind="categorical")
     assert _selected(no_ref) == ["shift", "classes", "batch", "nonnegative", "deterministic"]
 

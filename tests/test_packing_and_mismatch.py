@@ -96,7 +96,7 @@ def test_a_large_case_is_named_not_written_out() -> None:
     line = replay(spec, z, y)
     assert len(line) < 400 and "(1000, 10)" in line and "int64 (1000,)" in line
     seen: list[tuple[object, ...]] = []
-    exec(line, {"z": z, "y": y, "loss": lambda *a, **k: seen.append((a, k))})  # noqa: S102 - our own line
+    exec(line, {"np": np, "z": z, "y": y, "loss": lambda *a, **k: seen.append((a, k))})  # noqa: S102 - our own line
     assert seen[0][0][0] is z and seen[0][1] == {"margin": 0.5}
     small = replay(spec, z[:5], y[:5])
     assert small.startswith("loss(np.array([[0.0,")  # small cases are still written out

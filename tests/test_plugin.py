@@ -92,7 +92,7 @@ def test_a_broken_loss_fails_exactly_its_broken_checks(pytester: pytest.Pytester
     # the failure message is the check's text report, headed by its summary
     text = result.stdout.str()
     assert "reference failed: value and gradient differ from reference 'categorical_ce'" in text
-    assert "replay: loss(np.array(" in text
+    assert "replay: jax.enable_x64(" in text and ")(loss)(np.array(" in text
     assert "Traceback" not in text
 
 
@@ -107,8 +107,8 @@ def test_battery_runs_once_per_declaration_with_the_selected_checks(
         calls.append({"name": spec.name, **kw})
         return real_run(spec, **kw)
 
-    def making(spec):  # type: ignore[no-untyped-def]
-        ev = real_evaluator(spec)
+    def making(spec, *args):  # type: ignore[no-untyped-def]
+        ev = real_evaluator(spec, *args)
         made.append(weakref.ref(ev))
         return ev
 
@@ -161,11 +161,11 @@ def test_a_worker_runs_one_check_per_item_and_bounds_its_evaluators(monkeypatch:
         def check(self, name: str) -> str:
             return f"verdict of {name}"
 
-    def fake_evaluator(spec):  # type: ignore[no-untyped-def]
+    def fake_evaluator(spec, *limits):  # type: ignore[no-untyped-def]
         made.append(spec.name)
         return object()
 
-    def fake_run(spec, seed, effort, only, evaluator=None):  # type: ignore[no-untyped-def]
+    def fake_run(spec, seed, effort, only, evaluator=None, **budgets):  # type: ignore[no-untyped-def]
         runs.append((spec.name, list(only), evaluator))
         return Outcome(only)
 
@@ -194,9 +194,9 @@ def test_a_loss_that_cannot_be_called_fails_each_item_with_one_line(
     tries: list[str] = []
     real_evaluator = lossguard.evaluate.Evaluator
 
-    def making(spec):  # type: ignore[no-untyped-def]
+    def making(spec, *args):  # type: ignore[no-untyped-def]
         tries.append(spec.name)
-        return real_evaluator(spec)
+        return real_evaluator(spec, *args)
 
     monkeypatch.setattr(lossguard.evaluate, "Evaluator", making)
     _project(pytester, body='''
@@ -223,9 +223,10 @@ def test_settings_from_ini_and_flags_reach_header_and_run(pytester: pytest.Pytes
     _project(pytester, body="def test_nothing():\n    pass\n")
     pytester.makeini("[pytest]\nlossguard_effort = quick\nlossguard_seed = 5\n")
     result = pytester.runpytest_inprocess("-p", "no:cacheprovider")
-    result.stdout.fnmatch_lines(["lossguard *: seed=5 (ini lossguard_seed), effort=quick (ini lossguard_effort)"])
+    result.stdout.fnmatch_lines(["lossguard *: seed=5 (ini lossguard_seed), effort=quick (ini lossguard_effort), "
+                                 "call-timeout=60.0 (default), time-budget=300.0 (default), memory-budget=None*"])
     result = pytester.runpytest_inprocess("--lossguard-seed", "9", "-p", "no:cacheprovider")
-    result.stdout.fnmatch_lines(["lossguard *: seed=9 (--lossguard-seed), effort=quick (ini lossguard_effort)"])
+    result.stdout.fnmatch_lines(["lossguard *: seed=9 (--lossguard-seed), effort=quick (ini lossguard_effort), *"])
     result = pytester.runpytest_inprocess("--lossguard-effort", "fast", "-p", "no:cacheprovider")
     assert result.ret == pytest.ExitCode.USAGE_ERROR
     result.stderr.fnmatch_lines(["*--lossguard-effort='fast': expected one of quick, default, thorough*"])
@@ -331,9 +332,9 @@ if _WORKER:  # xdist workers only: the in-process serial run leaves lossguard un
         _log(what="run", loss=spec.name, checks=kw.get("only"))
         return _run(spec, **kw)
 
-    def logged_evaluator(spec):
+    def logged_evaluator(spec, *args, **kw):
         _log(what="evaluator", loss=spec.name)
-        return _evaluator(spec)
+        return _evaluator(spec, *args, **kw)
 
     lossguard.runner.run, lossguard.evaluate.Evaluator = logged_run, logged_evaluator
 
@@ -390,6 +391,9 @@ def test_xdist_workers_run_only_the_checks_they_receive(pytester: pytest.Pyteste
     if not grouped:  # 3 items on 2 workers go round-robin: test_scaled's two items are split
         assert max(len(w) for w in workers_of.values()) == 2
         parallel.stdout.fnmatch_lines([note])
+        if dist == "loadgroup":  # given and ineffective: say so, and do not recommend it again
+            parallel.stdout.fnmatch_lines(["*although --dist loadgroup was given*"])
+            parallel.stdout.no_fnmatch_line("*--dist loadgroup keeps each on one worker*")
     else:  # one xdist_group per declaration: each declaration on one worker
         assert all(len(w) == 1 for w in workers_of.values())
         parallel.stdout.no_fnmatch_line("*ran on more than one worker*")

@@ -36,7 +36,7 @@ from lossguard.ladders import (
 )
 from lossguard.checks import Context
 from lossguard.checks.finite import extreme_stack, reference_batch
-from lossguard.checks.reference import reference_stack_values
+from lossguard.references import evaluate_reference
 from lossguard.evaluate import Evaluator
 from lossguard.profile import mp_reference_stack
 from lossguard.tolerance import DTYPES, dtype_of
@@ -191,8 +191,11 @@ def test_batched_reference_equals_the_per_case_one(reference: str, kind: str, in
                    classes=None if kind == "binary" else 3, **extra)  # type: ignore[arg-type]
     ctx = Context(spec=spec, evaluator=Evaluator(spec), effort="quick")
     stack = extreme_stack(ctx, ctx.cells[0], "float64")
-    with np.errstate(all="ignore"):
-        slow = reference_stack_values(ctx, stack.predictions, stack.targets)
+    with np.errstate(all="ignore"):  # one case at a time, through the public one-case call
+        one = [evaluate_reference(reference, stack.predictions[k], stack.targets[k], inputs=inputs,
+                                  ignore_label=spec.ignore_label, reduction=ctx.evaluator.reduction,
+                                  params=dict(spec.params)) for k in range(len(stack))]
+    slow = (np.stack([v for v, _ in one]), np.stack([g for _, g in one]))
     fast = reference_batch(ctx, stack.predictions, stack.targets)
     for a, b in zip(fast, slow):
         assert np.array_equal(a, b, equal_nan=True)  # bit for bit, including infinities

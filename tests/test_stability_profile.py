@@ -81,9 +81,9 @@ def test_missing_matplotlib_is_one_line(monkeypatch: pytest.MonkeyPatch, tmp_pat
 
 
 def test_without_mpmath_the_float64_reference_stands_in(monkeypatch: pytest.MonkeyPatch) -> None:
-    import lossguard.profile as engine
+    import lossguard._mp_oracle as oracle
 
-    monkeypatch.setattr(engine, "_MP", None)
+    monkeypatch.setattr(oracle, "_MP", None)
     prof = profile(declare(tile_loss, kind="categorical", reference="categorical_ce"), dtypes=("float32",))
     assert "mpmath is not installed" in prof.oracle and prof.row("float32").safe_limit > 1e30
 

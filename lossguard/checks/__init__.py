@@ -58,6 +58,6 @@ def select_checks(spec: LossSpec, only: list[str] | None = None) -> list[tuple[C
         if reason is None and check.name in spec.skip:
             reason = "turned off with skip"
         elif reason is None and not (check.default(spec) or check.name in spec.expect or only):
-            reason = "optional: turn on with expect"
+            reason = f"optional: turn on with --expect {check.name} (expect=[{check.name!r}] in Python)"
         out.append((check, reason))
     return out

@@ -15,8 +15,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .._budget import case_count
-from .._range import Beyond, case_reach, judged_dtypes
+from .._range import Beyond, case_reach, describe_max_logit, judged_dtypes
 from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, random_stack, shape_menu, target_domain
+from ..effort import Effort, get_effort
 from ..evaluate import Evaluator
 from ..result import CheckResult
 from ..spec import LossSpec
@@ -81,8 +82,6 @@ def within(ctx: Context) -> str:
     """", |z| ≤ 1e+03" for a summary: the declared range of logits (nothing for probabilities)."""
     if ctx.spec.inputs == "probabilities":
         return ""
-    from .._range import describe_max_logit
-
     return "" if np.isinf(ctx.spec.max_logit) else f", |z| ≤ {describe_max_logit(ctx.spec.max_logit)}"
 
 
@@ -99,15 +98,19 @@ def planned(dtypes: tuple[str, ...] = DTYPES, op: str = "vg") -> Callable[[Conte
 
 @dataclass
 class Context:
-    """What a check receives: the declaration, the shared evaluator, the seed and effort."""
+    """What a check receives: the declaration, the shared evaluator, the seed and effort (a name
+    is accepted and turned into its :class:`~lossguard.effort.Effort`)."""
 
     spec: LossSpec
     evaluator: Evaluator
     seed: int = 0
-    effort: str = "default"
+    effort: Effort = "default"  # type: ignore[assignment]
     _stacks: dict[tuple[str, Cell], CaseStack] = field(default_factory=dict)
     #: replaces the shape menu when set (benchmarks measure growth with it); ``None``: the menu
     cells_override: tuple[Cell, ...] | None = None
+
+    def __post_init__(self) -> None:
+        self.effort = get_effort(self.effort)
 
     def rng(self, purpose: str) -> np.random.Generator:
         """A generator seeded by (seed, purpose): each check draws its own, reproducibly."""
@@ -124,13 +127,13 @@ class Context:
     def cells_for(self, dtype: str) -> list[Cell]:
         """The shapes a check evaluates in ``dtype``.
 
-        float64 (the oracle's precision) gets every cell. Below it, quick and default efforts
-        use the last cell only (the menu's largest class count): each further (dtype, shape)
+        float64 (the oracle's precision) gets every cell. Below it, efforts without
+        ``low_precision_every_cell`` (quick and default) use the last cell only (the menu's largest class count): each further (dtype, shape)
         costs a compilation, and what depends on the batch size in a low precision (a sum that
         overflows) is the ``dtypes`` check's 4096-row batch. Thorough uses every cell.
         """
         cells = self.cells
-        if dtype == "float64" or self.effort == "thorough":
+        if dtype == "float64" or self.effort.low_precision_every_cell:
             return cells
         return cells[-1:]
 

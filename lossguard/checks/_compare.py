@@ -9,6 +9,7 @@ from typing import Any
 import numpy as np
 
 from .._budget import large_case
+from .._replay import call, imports
 from ..cases import CaseStack
 from ..result import Example
 from ..spec import LossSpec
@@ -45,7 +46,8 @@ def replay(spec: LossSpec, z: np.ndarray, y: np.ndarray, dtype: str = "float64")
 
     Cases of up to :data:`INLINE_VALUES` values are written out; a larger one is called as
     ``loss(z, y)`` with a comment giving the shapes and where the arrays are (the example's
-    ``predictions`` and ``targets``, in the result and in the JSON report).
+    ``predictions`` and ``targets``, in the result and in the JSON report). The call is made in
+    the loss's framework and dtype (:mod:`lossguard._replay`: 64-bit mode scoped for JAX).
 
     Example:
         >>> from lossguard import declare
@@ -57,11 +59,10 @@ def replay(spec: LossSpec, z: np.ndarray, y: np.ndarray, dtype: str = "float64")
     params = "".join(f", {k}={v!r}" for k, v in spec.params.items())
     y_int = np.issubdtype(y.dtype, np.integer)
     if z.size + y.size > INLINE_VALUES:
-        return (f"loss(z, y{params})   # loss = {spec.name}; z: {dtype} {z.shape}, y: "
+        return (f"{call('z', 'y', dtype, y_int, params)}   # loss = {spec.name}; z: {dtype} {z.shape}, y: "
                 f"{y.dtype.name if y_int else dtype} {y.shape}, too large to write out: they are this "
                 f"example's predictions and targets (in the result, and in the JSON report)")
-    ydt = "" if y_int else f", dtype='{dtype}'"
-    return f"loss(np.array({_literal(z)}, dtype='{dtype}'), np.array({_literal(y)}{ydt}){params})   # loss = {spec.name}"
+    return f"{call(_literal(z), _literal(y), dtype, y_int, params)}   # loss = {spec.name}; {imports()}"
 
 
 def _compare(g: np.ndarray, e: np.ndarray, a: np.ndarray,

@@ -21,15 +21,71 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .. import _fd
+from .._budget import case_count
 from .._taylor import TaylorResult
-from ..cases import CaseStack
+from ..cases import CaseStack, Cell
 from ..evaluate import Evaluator
 from ..result import Example
 from ..tolerance import gamma
 from ._base import Context
 from ._compare import replay
 
-__all__ = ["Tally", "point_values", "sum_out", "dots", "slope_allowance", "example", "directional_pair"]
+__all__ = ["Probe", "probe_directions", "special_cases", "Tally", "point_values", "sum_out", "dots", "slope_allowance", "example", "directional_pair"]
+
+
+def special_cases(ctx: Context, cell: Cell) -> CaseStack:
+    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`);
+    at large shapes packed row by row into fewer cases (:func:`lossguard._fd.packed_branch_points`)."""
+    k = case_count(6, cell.elements(), least=1)
+    return _fd.packed_branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain, k)
+
+
+@dataclass
+class Probe:
+    """One stack's shared draws and evaluations, which every gradient source is compared against.
+
+    Shapes: K cases, D directions, predictions (K, *S), output per case ``out``; ``c`` the
+    cotangent (K,) + out; ``v`` unit directions (K, D, *S) with base steps ``h0`` (K, D);
+    ``fds`` the finite-difference estimates of ⟨c, L⟩ (key ``"c"``) and of Σ L (key ``"1"``);
+    ``slope`` the reverse-mode (or declared) slopes ⟨g, v⟩ (K, D) with allowance ``a_dot``;
+    ``comp`` the precision the loss really computes a float64 call in (a float32 loss: float32).
+    """
+
+    ctx: Context
+    stack: CaseStack
+    tally: Tally
+    out: tuple[int, ...]
+    scale: np.ndarray
+    n: int
+    big_g: np.ndarray
+    c: np.ndarray
+    cmax: np.ndarray
+    vals: np.ndarray
+    g: np.ndarray
+    oracle: str
+    v: np.ndarray
+    labels: list[str]
+    h0: np.ndarray
+    steps: np.ndarray
+    comp: str
+    fds: dict[str, _fd.Directional] = field(default_factory=dict)
+    noise: dict[str, np.ndarray] = field(default_factory=dict)
+    f0s: dict[str, np.ndarray] = field(default_factory=dict)
+    phis: dict[str, np.ndarray] = field(default_factory=dict)
+    slope: np.ndarray | None = None
+    a_dot: np.ndarray | None = None
+
+
+def probe_directions(ctx: Context, z: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, list[str], np.ndarray]:
+    """(unit directions v (K, D, *S), their labels, base steps h0 (K, D)), quantised so z ± h v is exact."""
+    shape = z.shape[1:]
+    v, labels = _fd.unit_directions(rng, len(z), shape, ctx.effort.directions)
+    if ctx.spec.inputs == "probabilities":  # scale by the room to the boundary: points stay in [0, 1]
+        v = v * np.minimum(z, 1.0 - z)[:, None]
+        norm = np.sqrt(np.sum(v.reshape(v.shape[:2] + (-1,)) ** 2, axis=2))
+        v = v / np.where(norm > 0, norm, 1.0).reshape(norm.shape + (1,) * len(shape))
+    h0 = _fd.base_steps(z, v, ctx.spec.inputs)
+    return _fd.quantise(z, v, h0), labels, h0
 
 
 def point_values(ev: Evaluator, stack: CaseStack, v: np.ndarray, h0: np.ndarray, out: tuple[int, ...]) -> np.ndarray:

@@ -42,18 +42,19 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .._search import Part, Tally, mismatch_examples, single, value_and_grad
+from ._property import Part, Tally, mismatch_examples, single, value_and_grad
 from .._budget import large_case
-from ..cases import CaseStack, Cell
+from ..cases import CaseStack, Cell, halves, join, split_cell, take_rows
 from ..references import get_reference
 from ..result import CheckResult
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import mismatch
-from .reference import case_scale, gradient_term_scale
+from ._reference_batch import example_weights
+from ._scales import case_scale, gradient_term_scale
 
-__all__ = ["CHECK", "split_cell", "halves", "row_weights", "take_rows"]
+__all__ = ["CHECK", "row_weights"]
 
 HINT = (
     "the loss is not a sum or mean of independent per-example terms: its value depends on the order "
@@ -66,47 +67,11 @@ HINT = (
 )
 
 
-def split_cell(cells: list[Cell]) -> Cell:
-    """The menu cell whose halves are evaluated: the one with the most rows."""
-    return max(cells, key=lambda c: c.n)
-
-
-def halves(cell: Cell) -> Cell:
-    """The cell of half the rows."""
-    return Cell(cell.n // 2, cell.c, cell.d)
-
-
-def take_rows(stack: CaseStack, idx: np.ndarray, cell: Cell | None = None) -> CaseStack:
-    """Rows ``idx`` (K, M) of every case (M may differ from N: then pass the new ``cell``)."""
-    k = np.arange(len(stack))[:, None]
-    return CaseStack(stack.predictions[k, idx], stack.targets[k, idx], cell or stack.cell, list(stack.notes))
-
-
-def join(a: CaseStack, b: CaseStack, cell: Cell) -> CaseStack:
-    """Rows of ``a`` then rows of ``b``, case by case."""
-    return CaseStack(np.concatenate([a.predictions, b.predictions], axis=1),
-                     np.concatenate([a.targets, b.targets], axis=1), cell, list(a.notes))
-
-
 def row_weights(ctx: Context, stack: CaseStack, convention: str) -> np.ndarray:
-    """w (K, N): how much each example counts in a mean under ``convention``."""
-    spec = ctx.spec
-    k, n = stack.targets.shape[:2]
-    per_row = float(stack.cell.d or 1) if spec.kind == "binary" else 1.0  # a binary row holds D elements
-    if convention == "all rows":
-        return np.full((k, n), per_row)
-    w = np.full((k, n), per_row)
-    y = stack.targets
-    if spec.kind == "categorical" and spec.ignore_label is not None:
-        kept = y != spec.ignore_label
-        w = w * kept
-        y = np.where(kept, y, 0)
-    if spec.reference is not None:
-        ref = get_reference(spec.reference)
-        if ref.example_weights is not None and spec.kind != "binary":
-            params = ref.resolved(spec.params)
-            w = w * np.stack([np.asarray(ref.example_weights(y[i], **params), dtype=np.float64) for i in range(k)])
-    return w
+    """w (K, M): how much each of a case's M examples counts in a mean under ``convention``
+    (``"all rows"``: every one, ignored or not, weighs 1; ``"examples"``: as the reference counts)."""
+    w = example_weights(ctx, stack.targets)
+    return np.ones_like(w) if convention == "all rows" else w
 
 
 @dataclass

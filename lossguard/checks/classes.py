@@ -34,7 +34,7 @@ import time
 
 import numpy as np
 
-from .._search import Part, Tally, mismatch_examples, single, value_and_grad
+from ._property import Part, Tally, mismatch_examples, single, value_and_grad
 from ..cases import CaseStack
 from ..references import get_reference
 from ..result import CheckResult
@@ -43,7 +43,7 @@ from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, only, planned
 from ._compare import mismatch
-from .reference import case_scale, gradient_term_scale
+from ._scales import case_scale, gradient_term_scale
 
 __all__ = ["CHECK", "permute_classes", "class_parts", "per_class_params"]
 

@@ -38,7 +38,7 @@ import time
 
 import numpy as np
 
-from .._search import Part, Tally, single
+from ._property import Part, Tally, single
 from ..cases import CaseStack
 from ..evaluate import NoGradient
 from ..result import CheckResult, Example

@@ -41,8 +41,10 @@ from .._cancelling import with_target_term
 from .._range import Beyond, split_rungs
 from ._base import Check, Context, planned, within
 from ._compare import examples_from, mismatch
-from .finite import fill_to, on_grid, own_float64, per_case_finite, reduced_fits, reference_batch
-from .reference import case_scale, gradient_term_scale
+from ._extremes import fill_to, on_grid
+from ._finite_oracle import own_float64, per_case_finite, reduced_fits
+from ._reference_batch import reference_batch
+from ._scales import case_scale, gradient_term_scale
 
 __all__ = ["CHECK", "LARGE_BATCH", "check_dtypes", "common_stack", "large_batch"]
 

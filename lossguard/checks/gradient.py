@@ -53,11 +53,12 @@ References:
 from __future__ import annotations
 
 import time
+
 import numpy as np
 
 from .. import _fd
 from .._taylor import taylor_along, taylor_orders
-from .._budget import case_count, large_case
+from .._budget import large_case
 from ..cases import CaseStack, Cell, concat
 from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
@@ -67,141 +68,165 @@ from ..tolerance import gamma, op_count, rounding_allowance
 from .._simplex import flushed
 from ._base import Check, Context
 from ._compare import examples_from, mismatch
-from ._gradient_parts import Tally, directional_pair, dots, example, point_values, slope_allowance, sum_out
-from .reference import case_scale, gradient_term_scale, reference_stack_values
+from ._gradient_parts import (Probe, Tally, directional_pair, dots, example, point_values, probe_directions,
+                              slope_allowance, special_cases, sum_out)
+from ._scales import case_scale, gradient_term_scale
+from ._reference_batch import reference_batch
 
-__all__ = ["CHECK", "check_stacks", "special_cases", "DIRECTIONS"]
+__all__ = ["CHECK", "check_stacks", "special_cases"]
 
-DIRECTIONS = {"quick": 2, "default": 3, "thorough": 4}
-
-
-def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "") -> None:
-    spec, ev = ctx.spec, ctx.evaluator
+def _setup(ctx: Context, stack: CaseStack, tally: Tally, tag: str) -> Probe:
+    """Draw the cotangent and directions, evaluate the gradient and every finite-difference point."""
+    ev = ctx.evaluator
     rng = ctx.rng(f"gradient {stack.cell}{tag}")
     stack = stack.with_predictions(_fd.snap(stack.predictions))
-    z, y, cell = stack.predictions, stack.targets, stack.cell
-    k, shape = len(stack), cell.pred_shape()
+    z, y, cell, k = stack.predictions, stack.targets, stack.cell, len(stack)
     out = ev.cotangent_shape(stack)
-    lead = 1 + len(out)
-    scale = case_scale(ctx, z)
-    n = op_count(cell.n, cell.c or cell.d or 1)
-    big_g = gradient_term_scale(ctx, y)
     c = rng.uniform(0.5, 2.0, size=k) if not out else rng.standard_normal((k,) + out)
-    cmax = np.abs(c).reshape(k, -1).max(axis=1)
     vals, g = ev.value_and_grad(stack, "float64", cotangent=c)
-    oracle = "declared grad" if not ev.has_autodiff else "reverse mode"
-    tally.oracles.add(oracle)
-
-    # directions, steps and the finite-difference stack (one evaluator call per chunk)
-    v, labels = _fd.unit_directions(rng, k, shape, DIRECTIONS.get(ctx.effort, 3))
-    if spec.inputs == "probabilities":  # scale by the room to the boundary: points stay in [0, 1]
-        v = v * np.minimum(z, 1.0 - z)[:, None]
-        norm = np.sqrt(np.sum(v.reshape(v.shape[:2] + (-1,)) ** 2, axis=2))
-        v = v / np.where(norm > 0, norm, 1.0).reshape(norm.shape + (1,) * len(shape))
-    h0 = _fd.base_steps(z, v, spec.inputs)
-    v = _fd.quantise(z, v, h0)
-    d = v.shape[1]
-    fv = point_values(ev, stack, v, h0, out)
+    v, labels, h0 = probe_directions(ctx, z, rng)
+    p = Probe(ctx, stack, tally, out, case_scale(ctx, z), op_count(cell.n, cell.c or cell.d or 1),
+               gradient_term_scale(ctx, y), c, np.abs(c).reshape(k, -1).max(axis=1), vals, g,
+               "declared grad" if not ev.has_autodiff else "reverse mode", v, labels, h0, _fd.step_ladder(h0),
+               ev.computed_dtype("float64"))
+    tally.oracles.add(p.oracle)
+    fv = point_values(ev, stack, v, h0, out)  # one evaluator call per chunk of points
     cb = c.reshape((k, 1, 1, 1) + out)
     with np.errstate(all="ignore"):
         # fmax.reduce skips nan like nanmax (nan only when every point is nan), without a warning
         top = np.maximum(np.abs(vals), np.fmax.reduce(np.abs(fv).reshape((k, -1) + out), axis=1))
-    comp = ev.computed_dtype("float64")  # a loss that computes in float32 rounds at float32's u
-    atol = rounding_allowance(top, scale + _fd.H0_LOGITS, dtype=comp, n_ops=n, both_sides=1).atol
+    # a loss that computes in float32 rounds at float32's u
+    atol = rounding_allowance(top, p.scale + _fd.H0_LOGITS, dtype=p.comp, n_ops=p.n, both_sides=1).atol
     atol = np.broadcast_to(atol, top.shape)
-    steps = _fd.step_ladder(h0)
-    fds, noise, f0s, phis = {}, {}, {}, {}
+    d = v.shape[1]
     for name, w in (("c", cb), ("1", np.ones_like(cb))):
-        phis[name] = phi = sum_out(fv * w, 4)  # ⟨w, L⟩ at every point: (K, D, 2, J)
-        noise[name] = sum_out(np.abs(w[:, 0, 0, 0]) * atol, 1)
-        f0s[name] = sum_out(vals * w[:, 0, 0, 0], 1)
+        p.phis[name] = phi = sum_out(fv * w, 4)  # ⟨w, L⟩ at every point: (K, D, 2, J)
+        p.noise[name] = sum_out(np.abs(w[:, 0, 0, 0]) * atol, 1)
+        p.f0s[name] = sum_out(vals * w[:, 0, 0, 0], 1)
         fp, fm = np.moveaxis(phi[:, :, 0], -1, 0), np.moveaxis(phi[:, :, 1], -1, 0)
-        f0b = np.broadcast_to(f0s[name][:, None], (k, d))
-        fds[name] = _fd.directional(f0b, fp, fm, steps, np.broadcast_to(noise[name][:, None], (k, d)))
-    fd = fds["c"]
-    judged = fd.judged
+        f0b = np.broadcast_to(p.f0s[name][:, None], (k, d))
+        p.fds[name] = _fd.directional(f0b, fp, fm, p.steps, np.broadcast_to(p.noise[name][:, None], (k, d)))
+    fd = p.fds["c"]
     tally.total += k
-    tally.judged += int(judged.sum())
-    tally.skipped += int((~judged).sum())
+    tally.judged += int(fd.judged.sum())
+    tally.skipped += int((~fd.judged).sum())
     tally.kinks += int(fd.kink.sum())
     good_tol = fd.allowance()[np.isfinite(fd.allowance())]
     tally.fd_tol += [float(good_tol.min()), float(good_tol.max())] if good_tol.size else []
+    return p
 
-    # reverse mode (or the declared grad for numpy losses) against finite differences
+
+def _against_fd(p: Probe) -> tuple[np.ndarray, np.ndarray]:
+    """Reverse mode (or the declared grad of a numpy loss) against finite differences, with the
+    observed Taylor orders: (failing cases (K,), failing directions (K, D))."""
+    k, d = p.v.shape[:2]
+    fd = p.fds["c"]
     with np.errstate(invalid="ignore"):  # inf · 0 where the true gradient is infinite: not judged
-        slope = dots(g, v)
-        a_dot = slope_allowance(g, v, scale, big_g * cmax, n, comp)
-    f0b = np.broadcast_to(f0s["c"][:, None], (k, d))
-    taylor = taylor_orders(f0b, np.moveaxis(phis["c"][:, :, 0], -1, 0), steps, slope,
-                           np.broadcast_to(noise["c"][:, None], (k, d)))
-    smooth_orders = taylor.observed[fd.smooth & np.isfinite(taylor.observed)]
-    tally.orders += smooth_orders.tolist()
-    bad = np.zeros(k, bool)
-    case_bad, kd_bad = directional_pair(ctx, tally, stack, f"{oracle} vs finite differences", slope, fd,
-                                         a_dot, labels, taylor)
-    bad |= case_bad
+        p.slope = slope = dots(p.g, p.v)
+        p.a_dot = slope_allowance(p.g, p.v, p.scale, p.big_g * p.cmax, p.n, p.comp)
+    f0b = np.broadcast_to(p.f0s["c"][:, None], (k, d))
+    taylor = taylor_orders(f0b, np.moveaxis(p.phis["c"][:, :, 0], -1, 0), p.steps, slope,
+                           np.broadcast_to(p.noise["c"][:, None], (k, d)))
+    p.tally.orders += taylor.observed[fd.smooth & np.isfinite(taylor.observed)].tolist()
+    case_bad, kd_bad = directional_pair(p.ctx, p.tally, p.stack, f"{p.oracle} vs finite differences", slope, fd,
+                                        p.a_dot, p.labels, taylor)
     if kd_bad.any():
-        kk, dd = np.argwhere(kd_bad)[np.argmax(np.where(kd_bad, np.abs(slope - fd.central.value), -1)[kd_bad])]
-        def phi(points: np.ndarray) -> np.ndarray:  # the cell's compiled function: no new compilation
-            one = CaseStack(points, np.repeat(y[kk:kk + 1], len(points), axis=0), cell)
-            return sum_out(ev.values(one, "float64") * c[kk][None], 1)
+        _diagnose(p, kd_bad)
+    return case_bad, kd_bad
 
-        t = taylor_along(phi, z[kk], v[kk, dd], float(h0[kk, dd]), float(f0s["c"][kk]), float(slope[kk, dd]),
-                         float(noise["c"][kk]))
-        tally.notes.add(f"at the worst point, {t.describe((0,))}")
-        ones = fds["1"].central.value
-        if np.all(np.abs(slope[kd_bad] - ones[kd_bad]) <= (fds["1"].allowance() + a_dot)[kd_bad]):
-            tally.notes.add("the gradient equals the one for cotangent 1: the backward pass ignores its "
-                            "incoming cotangent")
 
+def _diagnose(p: Probe, kd_bad: np.ndarray) -> None:
+    """Notes on the worst failing direction: its Taylor test, and whether the gradient is the one
+    for cotangent 1 (a backward pass that ignores its incoming cotangent)."""
+    ev, slope, a_dot = p.ctx.evaluator, p.slope, p.a_dot
+    assert slope is not None and a_dot is not None
+    z, y, c = p.stack.predictions, p.stack.targets, p.c
+    kk, dd = np.argwhere(kd_bad)[np.argmax(np.where(kd_bad, np.abs(slope - p.fds["c"].central.value), -1)[kd_bad])]
+
+    def phi(points: np.ndarray) -> np.ndarray:  # the cell's compiled function: no new compilation
+        one = CaseStack(points, np.repeat(y[kk:kk + 1], len(points), axis=0), p.stack.cell)
+        return sum_out(ev.values(one, "float64") * c[kk][None], 1)
+
+    t = taylor_along(phi, z[kk], p.v[kk, dd], float(p.h0[kk, dd]), float(p.f0s["c"][kk]), float(slope[kk, dd]),
+                     float(p.noise["c"][kk]))
+    p.tally.notes.add(f"at the worst point, {t.describe((0,))}")
+    ones = p.fds["1"].central.value
+    if np.all(np.abs(slope[kd_bad] - ones[kd_bad]) <= (p.fds["1"].allowance() + a_dot)[kd_bad]):
+        p.tally.notes.add("the gradient equals the one for cotangent 1: the backward pass ignores its "
+                          "incoming cotangent")
+
+
+def _forward(p: Probe, kd_bad: np.ndarray) -> np.ndarray:
+    """Forward mode against reverse mode: failing cases (K,)."""
+    ctx, stack, tally, slope, a_dot = p.ctx, p.stack, p.tally, p.slope, p.a_dot
+    assert slope is not None and a_dot is not None
+    k, d = p.v.shape[:2]
+    try:
+        tang = np.stack([ctx.evaluator.jvp(stack, np.ascontiguousarray(p.v[:, j]), "float64")[1] for j in range(d)],
+                        axis=1)
+    except (LossCallError, NoGradient) as exc:
+        why = str(exc).split(" while computing")[0].replace("loss raised ", "")
+        tally.notes.add(f"forward mode unavailable: {why.rstrip('. ')}")
+        return np.zeros(k, bool)
+    fwd = sum_out(tang * p.c.reshape((k, 1) + p.out), 2)
+    tally.oracles.add("forward mode")
+    with np.errstate(invalid="ignore"):
+        err = np.abs(fwd - slope)
+        fb = ~(err <= 2.0 * a_dot) & np.isfinite(slope)
+        fratio = (err / (2 * a_dot)).max(axis=1)
+    side = np.where(kd_bad, "finite differences side against reverse mode",
+                    np.where(p.fds["c"].judged, "finite differences side with reverse mode",
+                             "finite differences cannot judge this point"))
+    ex = [example(ctx, stack, int(i), f"forward mode vs reverse mode, {p.labels[j]}", float(fwd[i, j]),
+                  float(slope[i, j]), float(err[i, j]), float(2 * a_dot[i, j]), str(side[i, j]))
+          for i, j in np.argwhere(fb)[:2]]
+    tally.add("forward mode vs reverse mode", fb.any(axis=1), fratio, ex)
+    return fb.any(axis=1)
+
+
+def _declared(p: Probe) -> np.ndarray:
+    """A declared closed-form grad beside autodiff (the gradient of Σ outputs) against finite
+    differences: failing cases (K,)."""
+    gu = p.ctx.evaluator.user_grads(p.stack, "float64")
+    if gu is None:
+        return np.zeros(len(p.stack), bool)
+    p.tally.oracles.add("declared grad")
+    with np.errstate(invalid="ignore"):
+        su = dots(gu, p.v)
+    return directional_pair(p.ctx, p.tally, p.stack, "declared grad vs finite differences", su, p.fds["1"],
+                            slope_allowance(gu, p.v, p.scale, p.big_g, p.n, p.comp), p.labels, None)[0]
+
+
+def _registry(p: Probe) -> np.ndarray:
+    """The registry's hand-derived gradient against the loss's: failing cases (K,)."""
+    ctx, spec = p.ctx, p.ctx.spec
+    p.tally.oracles.add(f"registry {spec.reference!r}")
+    _, gref = reference_batch(ctx, p.stack.predictions, p.stack.targets, cotangent=p.c)
+    al = rounding_allowance(gref, p.scale, dtype=ctx.evaluator.computed_dtype("float64"), n_ops=p.n,
+                            normwise=True, grad_scale=p.big_g * p.cmax)
+    m = mismatch(p.g, gref, al.atol)
+    ex = examples_from(m, spec, p.stack, f"{p.oracle} vs registry {spec.reference!r} closed form")
+    p.tally.add("registry closed form", m.case_bad, m.case_ratio, [(e.abs_err / e.allowance, e) for e in ex])
+    return m.case_bad
+
+
+def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "") -> None:
+    """Every gradient source of one stack against finite differences and against each other."""
+    spec, ev = ctx.spec, ctx.evaluator
+    p = _setup(ctx, stack, tally, tag)
+    case_bad, kd_bad = _against_fd(p)
+    bad = case_bad.copy()
     # forward mode against reverse mode (JAX only: other adapters derive forward from reverse)
     if forward and isinstance(ev.adapter, JaxAdapter):
-        try:
-            tang = np.stack([ev.jvp(stack, np.ascontiguousarray(v[:, j]), "float64")[1] for j in range(d)], axis=1)
-            fwd = sum_out(tang * c.reshape((k, 1) + out), 2)
-            tally.oracles.add("forward mode")
-            with np.errstate(invalid="ignore"):
-                err = np.abs(fwd - slope)
-                fb = ~(err <= 2.0 * a_dot) & np.isfinite(slope)
-                fratio = (err / (2 * a_dot)).max(axis=1)
-            side = np.where(kd_bad, "finite differences side against reverse mode",
-                            np.where(fd.judged, "finite differences side with reverse mode",
-                                     "finite differences cannot judge this point"))
-            ex = [example(ctx, stack, int(i), f"forward mode vs reverse mode, {labels[j]}", float(fwd[i, j]),
-                           float(slope[i, j]), float(err[i, j]), float(2 * a_dot[i, j]), str(side[i, j]))
-                  for i, j in np.argwhere(fb)[:2]]
-            tally.add("forward mode vs reverse mode", fb.any(axis=1), fratio, ex)
-            bad |= fb.any(axis=1)
-        except (LossCallError, NoGradient) as exc:
-            why = str(exc).split(" while computing")[0].replace("loss raised ", "")
-            tally.notes.add(f"forward mode unavailable: {why.rstrip('. ')}")
-
-    # a declared closed-form grad beside autodiff: the gradient of Σ outputs
+        bad |= _forward(p, kd_bad)
     if spec.grad is not None and ev.has_autodiff:
-        gu = ev.user_grads(stack, "float64")
-        if gu is not None:
-            tally.oracles.add("declared grad")
-            with np.errstate(invalid="ignore"):
-                su = dots(gu, v)
-            bad |= directional_pair(ctx, tally, stack, "declared grad vs finite differences", su, fds["1"],
-                                     slope_allowance(gu, v, scale, big_g, n, comp), labels, None)[0]
-
-    # the registry's hand-derived gradient
+        bad |= _declared(p)
     if spec.reference is not None:
-        tally.oracles.add(f"registry {spec.reference!r}")
-        with np.errstate(all="ignore"):
-            _, gref = reference_stack_values(ctx, z, y, cotangent=c)
-        al = rounding_allowance(gref, scale, dtype=ev.computed_dtype("float64"), n_ops=n, normwise=True,
-                                grad_scale=big_g * cmax)
-        m = mismatch(g, gref, al.atol)
-        ex = examples_from(m, spec, stack, f"{oracle} vs registry {spec.reference!r} closed form")
-        tally.add("registry closed form", m.case_bad, m.case_ratio, [(e.abs_err / e.allowance, e) for e in ex])
-        bad |= m.case_bad
-
+        bad |= _registry(p)
     if ev.output == "per_example":
-        bad |= _row_leaks(ctx, tally, stack, out, scale, big_g, n, tag)
-    if ev.has_autodiff and stack.cell in ctx.cells_for("float32") and "float32" in ctx.spec.dtypes:
-        bad |= _float32(ctx, tally, stack, c, scale, big_g * cmax, n, ~bad)
+        bad |= _row_leaks(ctx, tally, p.stack, p.out, p.scale, p.big_g, p.n, tag)
+    if ev.has_autodiff and p.stack.cell in ctx.cells_for("float32") and "float32" in spec.dtypes:
+        bad |= _float32(ctx, tally, p.stack, p.c, p.scale, p.big_g * p.cmax, p.n, ~bad)
     tally.bad += int(bad.sum())
 
 
@@ -282,13 +307,6 @@ def _run(ctx: Context) -> CheckResult:
         parts = [ctx.standard_cases(cell), special_cases(ctx, cell)]
         stacks += parts if large_case(cell.elements()) else [concat(parts)]  # large cases are probed one by one
     return check_stacks(ctx, stacks)
-
-
-def special_cases(ctx: Context, cell: Cell) -> CaseStack:
-    """Zeros, exact ties and branch thresholds for ``cell`` (:func:`lossguard._fd.branch_points`);
-    at large shapes packed row by row into fewer cases (:func:`lossguard._fd.packed_branch_points`)."""
-    k = case_count(6, cell.elements(), least=1)
-    return _fd.packed_branch_points(ctx.spec, cell, ctx.rng(f"gradient special {cell}"), ctx.domain, k)
 
 
 def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:

@@ -32,10 +32,11 @@ from ..cases import CaseStack, Cell, concat
 from ..evaluate import NoGradient
 from ..ladders import mask_non_targets, sparse_simplex_rows
 from ..result import CheckResult, Example
-from ..tolerance import DTYPES, op_count, rounding_allowance
+from ..tolerance import op_count, rounding_allowance
 from ._base import EAGER_DTYPE, Check, Context, only, planned
 from ._compare import replay
-from .finite import own_float64, per_case_finite, reduced_fits, reference_batch
+from ._finite_oracle import own_float64, per_case_finite, reduced_fits
+from ._reference_batch import reference_batch
 
 __all__ = ["CHECK", "check_masking", "masked_cases", "DEPTHS"]
 
@@ -124,7 +125,7 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
     """The check on the given dtypes (default: float32 and float64 at quick effort, else all)."""
     t0 = time.perf_counter()
     spec, ev = ctx.spec, ctx.evaluator
-    dtypes = ctx.judged_dtypes(dtypes or (("float32", "float64") if ctx.effort == "quick" else DTYPES)) or ("float64",)
+    dtypes = ctx.judged_dtypes(dtypes or ctx.effort.masking_dtypes) or ("float64",)
     total = failed = skipped = 0
     worst: list[Example] = []
     oracle_name = ""
@@ -201,5 +202,5 @@ CHECK = Check(
     applies=only("categorical", "distribution", inputs="logits"),
     skip_hint="skip if the loss is never given masked (−inf) logits",
     order=30,
-    compiles=lambda ctx: planned(("float32", "float64") if ctx.effort == "quick" else DTYPES)(ctx),
+    compiles=lambda ctx: planned(ctx.effort.masking_dtypes)(ctx),
 )

@@ -35,7 +35,7 @@ import time
 
 import numpy as np
 
-from .._search import Part, Tally, single, value_and_grad
+from ._property import Part, Tally, single, value_and_grad
 from ..cases import CaseStack, Cell
 from ..references import get_reference
 from ..result import CheckResult, Example
@@ -44,12 +44,10 @@ from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import replay
-from .reference import case_scale
+from ._scales import case_scale
 
 __all__ = ["CHECK", "nonnegative_parts"]
 
-#: dtypes judged at each effort (quick skips float32 to save a compilation)
-DTYPES_CHECKED = {"quick": ("float64",), "default": ("float64", "float32"), "thorough": ("float64", "float32")}
 
 HINT = (
     "the loss went below zero: a constant or entropy term subtracted (ℓ − log C, a KL written "
@@ -60,7 +58,7 @@ HINT = (
 
 
 def _dtypes(ctx: Context) -> tuple[str, ...]:
-    return DTYPES_CHECKED.get(ctx.effort, DTYPES_CHECKED["default"])
+    return ctx.effort.nonnegative_dtypes  # quick skips float32 to save a compilation
 
 
 def _dtypes_at(ctx: Context, cell: Cell) -> tuple[str, ...]:

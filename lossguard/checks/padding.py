@@ -38,16 +38,15 @@ import time
 
 import numpy as np
 
-from .._search import Part, Tally, mismatch_examples, single, value_and_grad
-from ..cases import CaseStack, to_inputs
+from ._property import Part, Tally, mismatch_examples, single, value_and_grad
+from ..cases import CaseStack, halves, join, split_cell, take_rows, to_inputs
 from ..result import CheckResult, Example
 from ..spec import LossSpec
 from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import mismatch, replay
-from .batch import halves, join, split_cell, take_rows
-from .reference import case_scale, gradient_term_scale
+from ._scales import case_scale, gradient_term_scale
 
 __all__ = ["CHECK", "padding_parts"]
 

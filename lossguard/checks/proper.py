@@ -54,7 +54,7 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 from .._budget import case_count
-from .._search import Part, Tally, mismatch_examples, value_and_grad
+from ._property import Part, Tally, mismatch_examples, value_and_grad
 from ..cases import CaseStack, Cell, to_inputs
 from ..references import get_reference
 from ..result import CheckResult, Example
@@ -63,7 +63,7 @@ from ..strategies import simplex_targets
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import fmt, mismatch
-from .reference import gradient_term_scale
+from ._scales import gradient_term_scale
 
 __all__ = ["CHECK", "build", "expected_gradient", "minimiser", "proper_parts"]
 

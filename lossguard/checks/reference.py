@@ -14,62 +14,14 @@ import numpy as np
 
 from ..evaluate import NoGradient
 from .._cancelling import with_target_term
-from ..references import evaluate_reference, get_reference
 from ..result import CheckResult
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import examples_from, mismatch, over_allowance
+from ._reference_batch import reference_batch
+from ._scales import case_scale, gradient_term_scale
 
-__all__ = ["CHECK", "reference_stack_values", "case_scale", "gradient_term_scale"]
-
-
-def case_scale(ctx: Context, predictions: np.ndarray) -> np.ndarray:
-    """S per case: the largest |logit| (1 for probability inputs, whose values do not cancel)."""
-    k = predictions.shape[0]
-    if ctx.spec.inputs == "probabilities":
-        return np.ones(k)
-    flat = predictions.reshape(k, -1)
-    return np.maximum(flat.max(axis=1), -flat.min(axis=1))  # max |z| without a |z| temporary
-
-
-def gradient_term_scale(ctx: Context, targets: np.ndarray) -> np.ndarray:
-    """G per case: the size of the gradient terms that cancel (p and y, scaled by the reduction).
-
-    For a mean that is 1/N_eff (examples not ignored), times the spread of per-class parameters
-    (largest over smallest), which scale individual rows; 1 for a sum or per-example output.
-    """
-    k = targets.shape[0]
-    if ctx.evaluator.reduction != "mean":
-        g = np.ones(k)
-    elif ctx.spec.kind == "categorical" and ctx.spec.ignore_label is not None:
-        g = 1.0 / np.maximum(np.sum(targets != ctx.spec.ignore_label, axis=1), 1)
-    else:
-        g = np.full(k, 1.0 / int(np.prod(targets.shape[1:2] if ctx.spec.kind != "binary" else targets.shape[1:])))
-    for v in ctx.spec.params.values():
-        if isinstance(v, (list, tuple)) and len(v) > 1:
-            arr = np.abs(np.asarray(v, dtype=np.float64))
-            if np.min(arr) > 0:
-                g = g * float(np.max(arr) / np.min(arr))
-    return g
-
-
-def reference_stack_values(
-    ctx: Context, predictions: np.ndarray, targets: np.ndarray, cotangent: np.ndarray | None = None
-) -> tuple[np.ndarray, np.ndarray]:
-    """The reference's float64 (values, gradients) for each case of a stack."""
-    spec = ctx.spec
-    ref = get_reference(spec.reference or "")
-    vals, grads = [], []
-    for k in range(predictions.shape[0]):
-        with np.errstate(all="ignore"):  # a true gradient may overflow (−a/p at p ≈ 0): inf is the answer
-            v, g = evaluate_reference(
-                ref, predictions[k], targets[k], inputs=spec.inputs, ignore_label=spec.ignore_label,
-                reduction=ctx.evaluator.reduction, params=dict(spec.params),
-                cotangent=None if cotangent is None else cotangent[k],
-            )
-        vals.append(v)
-        grads.append(g)
-    return np.stack(vals), np.stack(grads)
+__all__ = ["CHECK"]
 
 
 def _run(ctx: Context) -> CheckResult:
@@ -90,7 +42,7 @@ def _run(ctx: Context) -> CheckResult:
                 grad_checked = False
         if not grad_checked:
             got_v = ev.values(stack, "float64")
-        exp_v, exp_g = reference_stack_values(ctx, stack.predictions, stack.targets)
+        exp_v, exp_g = reference_batch(ctx, stack.predictions, stack.targets)
         scale = case_scale(ctx, stack.predictions)
         n = op_count(cell.n, cell.c or cell.d or 1)
         dtype = ev.computed_dtype("float64")

@@ -55,8 +55,8 @@ from ..result import CheckResult, Example
 from ..tolerance import gamma, op_count
 from ._base import Check, Context, never
 from ._compare import replay
-from .gradient import DIRECTIONS, special_cases
-from .reference import case_scale, gradient_term_scale
+from ._gradient_parts import special_cases
+from ._scales import case_scale, gradient_term_scale
 
 __all__ = ["CHECK"]
 
@@ -102,7 +102,7 @@ def _probe(ctx: Context, stack: CaseStack, found: dict) -> None:
     scale = case_scale(ctx, z)
     n = op_count(cell.n, cell.c or cell.d or 1)
     big_g = gradient_term_scale(ctx, stack.targets) * cmax
-    v, labels = _fd.unit_directions(rng, k, shape, DIRECTIONS.get(ctx.effort, 3))
+    v, labels = _fd.unit_directions(rng, k, shape, ctx.effort.directions)
     if spec.inputs == "probabilities":  # keep every point inside [0, 1]
         v = v * np.minimum(z, 1.0 - z)[:, None]
         norm = np.sqrt(np.sum(v.reshape(v.shape[:2] + (-1,)) ** 2, axis=2))

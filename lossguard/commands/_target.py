@@ -22,7 +22,8 @@ def add_target_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--inputs", default="logits", choices=INPUTS, help="what the predictions are")
     parser.add_argument("--reference", metavar="NAME", help="registry loss it must equal (see `lossguard references`)")
     parser.add_argument("--param", action="append", default=[], metavar="KEY=VALUE",
-                        help="parameter passed to the loss and the reference; VALUE parsed as JSON, else a string")
+                        help="parameter passed to the loss and the reference; VALUE parsed as JSON, else a string "
+                        "(a VALUE that starts like JSON — [, {, \", a digit — must be valid JSON)")
     parser.add_argument("--classes", type=int, metavar="N", help="fix the class count")
     parser.add_argument("--ignore-label", type=int, metavar="INT", help="categorical: label meaning 'leave out'")
     parser.add_argument("--reduction", default="mean", choices=("mean", "sum"), help="how a scalar output was reduced")
@@ -46,7 +47,12 @@ def parse_params(items: list[str]) -> dict[str, Any]:
             raise SpecError(bad_value("--param", item, "KEY=VALUE", "try --param gamma=2.0"))
         try:
             out[key] = json.loads(text)
-        except json.JSONDecodeError:
+        except json.JSONDecodeError as exc:
+            if text[:1] in "[{\"" or text[:1].isdigit() or text[:1] in "-.":
+                # it looks like JSON (a list, an object, a number): a typo, not a string
+                raise SpecError(bad_value("--param", item, f"a valid JSON value ({exc.msg} at character "
+                                          f"{exc.pos})", "try --param weight=[1,2,0.5]; quote a string "
+                                          "as --param 'mode=\"fast\"'")) from None
             out[key] = text
     return out
 

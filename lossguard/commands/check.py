@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
+from .._paths import check_report_paths
 from ..report import progress_for, write_reports
 from ..report.text import render, wants_colour
 from ..runner import run
@@ -25,8 +26,10 @@ def add_parser(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
 
 def main(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, args.target)
-    with progress_for(sys.stdout) as update:
-        result = run(spec, seed=args.seed, effort=args.effort, only=args.only, target=args.target, progress=update)
+    check_report_paths(json=args.json, markdown=args.markdown)  # before the battery, not after it
+    with progress_for(sys.stdout, heartbeat=sys.stderr) as update:
+        result = run(spec, seed=args.seed, effort=args.effort, only=args.only, target=args.target, progress=update,
+                     call_timeout=args.call_timeout, time_budget=args.time_budget, memory_budget=args.memory_budget)
     sys.stdout.write(render(result, color=wants_colour(sys.stdout)))
     write_reports(result, json_path=args.json, markdown_path=args.markdown)
     return result.exit_code

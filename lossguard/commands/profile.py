@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 
+from .._paths import check_report_paths, writing
 from ..errors import LossguardError
 from ..profile import Profile, profile
 from ..tolerance import DTYPES
@@ -38,12 +39,14 @@ def add_parser(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
 
 def main(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, args.target)
+    check_report_paths(png=args.png)
     if args.png:
         _matplotlib()  # fail before the work, not after it
     prof = profile(spec, seed=args.seed, dtypes=tuple(args.dtype or DTYPES), target=args.target, effort=args.effort)
     sys.stdout.write(render_profile(prof))
     if args.png:
-        write_png(prof, args.png)
+        with writing("png", args.png):
+            write_png(prof, args.png)
         sys.stdout.write(f"  wrote {args.png}\n")
     return 0
 

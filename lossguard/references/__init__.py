@@ -30,7 +30,8 @@ from numpy.typing import ArrayLike
 
 from .._suggest import bad_value, did_you_mean
 from ..errors import SpecError
-from ._base import PROPERTIES, Param, Reference, reduce_grads, reduce_values
+from ._base import PROPERTIES, Param, Reference
+from ._stack import reduce_stack, stack_rows
 from .bce import BCE
 from .ce import CATEGORICAL_CE, SMOOTHED_CE, softmax_ce_hessian
 from .focal import FOCAL_BINARY, FOCAL_MULTICLASS
@@ -167,12 +168,16 @@ def evaluate_reference(
     reduction: str = "mean",
     params: Mapping[str, Any] | None = None,
     cotangent: ArrayLike | None = None,
+    stacked: bool = False,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Value and gradient (w.r.t. ``z``) of a reference loss on one case, in float64.
+    """Value and gradient (w.r.t. ``z``) of a reference loss on one case, or on a stack of cases
+    (``stacked=True``: a leading case axis K on ``z``, ``y``, ``cotangent`` and the results), in
+    float64.
 
-    Shapes: ``z`` (N, C) with ``y`` labels (N,) or rows (N, C); binary ``z`` and ``y`` (N,) or
-    (N, D). The kind is read from the shapes (and from the reference: a binary-only reference
-    treats (N, D) as binary).
+    Shapes (one case): ``z`` (N, C) with ``y`` labels (N,) or rows (N, C); binary ``z`` and ``y``
+    (N,) or (N, D). The kind is read from the shapes (and from the reference: a binary-only
+    reference treats (N, D) as binary). A stack is evaluated in one numpy call
+    (:mod:`lossguard.references._stack`), with the same numbers as one case at a time.
     Formula: mean Σ w ℓ / Σ w, sum Σ w ℓ, none w ⊙ ℓ; w_i = 0 for ignored labels, else the
     reference's example weight (class weight of the label) or 1.
 
@@ -185,7 +190,9 @@ def evaluate_reference(
         reduction: ``"mean"``, ``"sum"`` or ``"none"``.
         params: parameters of the reference (validated; defaults fill the rest).
         cotangent: for ``"none"``, the vector (shape of the value) the VJP is taken with
-            (ones when ``None``); for ``"mean"``/``"sum"`` an optional scalar multiplier.
+            (ones when ``None``); for ``"mean"``/``"sum"`` an optional scalar multiplier (one
+            per case when stacked).
+        stacked: ``z`` and ``y`` carry a leading case axis.
     Returns:
         ``(value, grad)``: value 0-d (mean, sum) or per-example (none); grad shaped like ``z``.
         With every example ignored, ``"mean"`` gives nan (0/0), as documented in ``_base``.
@@ -207,35 +214,29 @@ def evaluate_reference(
                                   did_you_mean(reduction, _REDUCTIONS)))
     z = np.asarray(z, dtype=np.float64)
     y = np.asarray(y)
-    kind = _infer_kind(ref, z, y)
+    zs, ys = (z, y) if stacked else (z[None], y[None])
+    kind = _infer_kind(ref, zs[0], ys[0])
     if ignore_label is not None and kind != "categorical":
         raise SpecError(bad_value("ignore_label", ignore_label,
                                   f"no ignore label for kind={kind!r}",
                                   "drop it, or pass integer labels"))
-    classes = z.shape[-1] if kind != "binary" else None
-    resolved = validate_params(ref, params, classes)
+    resolved = validate_params(ref, params, zs.shape[-1] if kind != "binary" else None)
     if kind == "categorical":
-        ignored = (y == ignore_label) if ignore_label is not None else np.zeros(y.shape, bool)
-        y = _labels(y, int(z.shape[-1]), ignored)
+        ignored = (ys == ignore_label) if ignore_label is not None else np.zeros(ys.shape, bool)
+        ys = np.where(ignored, ignore_label or 0, _labels(ys, int(zs.shape[-1]), ignored))
     else:
-        ignored = np.zeros(z.shape if kind == "binary" else y.shape[:-1], bool)
-        y = y.astype(np.float64)
-    values = ref.per_example(z, y, inputs=inputs, **resolved)
-    grads = ref.per_example_grad(z, y, inputs=inputs, **resolved)
-    base = ref.example_weights(y, **resolved) if ref.example_weights is not None else None
-    weights = np.where(ignored, 0.0, 1.0 if base is None else base)
-    weights = np.broadcast_to(weights, np.shape(values)).astype(np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        value = reduce_values(values, weights, reduction)
-        if reduction == "none":
-            cot = None if cotangent is None else np.asarray(cotangent, dtype=np.float64)
-            if cot is not None and cot.shape != np.shape(values):
-                raise SpecError(bad_value("cotangent", f"shape {cot.shape}",
-                                          f"the value's shape {np.shape(values)}",
-                                          "pass one number per example"))
-            grad = reduce_grads(grads, weights, reduction, cot)
-        else:
-            grad = reduce_grads(grads, weights, reduction)
-            if cotangent is not None:
-                grad = float(np.asarray(cotangent, dtype=np.float64)) * grad
+        ys = ys.astype(np.float64)
+    cot = None if cotangent is None else np.asarray(cotangent, dtype=np.float64)
+    ell, grads, weights = stack_rows(ref, zs, ys, kind=kind, inputs=inputs, ignore_label=ignore_label,
+                                     params=resolved)
+    out_shape = (ys.shape[:2] if kind != "binary" else ys.shape)[1:]
+    if cot is not None and reduction == "none" and cot.shape[stacked:] != out_shape:
+        raise SpecError(bad_value("cotangent", f"shape {cot.shape[stacked:]}", f"the value's shape {out_shape}",
+                                  "pass one number per example"))
+    if cot is not None and not stacked:
+        cot = cot[None]
+    value, grad = reduce_stack(ell, grads, weights, reduction, pred_shape=zs.shape, targ_shape=ys.shape,
+                               kind=kind, cotangent=cot)
+    if not stacked:
+        value, grad = value[0], grad[0]  # type: ignore[index]
     return np.asarray(value, dtype=np.float64), np.asarray(grad, dtype=np.float64)

@@ -1,4 +1,5 @@
-"""The shape every reference loss has, and the reduction they all share.
+"""The shape every reference loss has, and the reduction they all share (written here, taken in
+:mod:`lossguard.references._stack`).
 
 Notation: predictions ``z`` of shape (N, C) for categorical and distribution kinds (class axis
 last), shape (N,) or (N, D) for the binary kind; targets ``y`` are integer labels (N,), simplex
@@ -8,7 +9,7 @@ A reference is written per example: ``per_example`` returns the loss of each exa
 for categorical/distribution, the predictions' shape for binary) and ``per_example_grad`` the
 derivative of each example's loss with respect to its own predictions (the predictions' shape),
 both in float64 numpy and both derived by hand. The batch reduction is common to all references
-and lives here: with per-example weights w_i (0 for ignored examples, the class weight of the
+(:func:`lossguard.references._stack.reduce_stack` takes it): with per-example weights w_i (0 for ignored examples, the class weight of the
 label for class-weighted losses, 1 otherwise)
 
     mean:         L = Σ_i w_i ℓ_i / Σ_i w_i          ∂L/∂z_i = w_i ∂ℓ_i/∂z_i / Σ_i w_i
@@ -27,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Param", "Reference", "PROPERTIES", "reduce_values", "reduce_grads"]
+__all__ = ["Param", "Reference", "PROPERTIES"]
 
 #: Property names a reference may declare.
 PROPERTIES = frozenset({"nonnegative", "convex", "shift_invariant", "proper", "class_symmetric"})
@@ -102,41 +103,3 @@ class Reference:
         out = {p.name: p.default for p in self.params}
         out.update(params)
         return out
-
-
-def reduce_values(
-    values: np.ndarray, weights: np.ndarray, reduction: str
-) -> np.ndarray:
-    """Reduce per-example values ``values`` (N, …) with weights ``weights`` (N, …).
-
-    ``reduction`` is ``"mean"`` (weighted mean, Σwℓ/Σw; 0/0 gives nan), ``"sum"`` or ``"none"``
-    (returns w·ℓ with ignored rows exactly 0).
-    """
-    wl = np.where(weights != 0, weights * values, 0.0)  # ignored rows contribute exactly 0, even if ℓ is nan
-    if reduction == "none":
-        return wl
-    total = np.sum(wl)
-    if reduction == "sum":
-        return total
-    return total / np.sum(weights)
-
-
-def reduce_grads(
-    grads: np.ndarray, weights: np.ndarray, reduction: str, cotangent: np.ndarray | None = None
-) -> np.ndarray:
-    """Gradient of the reduced loss given per-example gradients ``grads`` (shape of z).
-
-    For ``"none"`` the result is the vector–Jacobian product with ``cotangent`` (shape of the
-    per-example output; ones when ``None``).
-    """
-    w = weights
-    if reduction == "none":
-        c = np.ones_like(w) if cotangent is None else np.asarray(cotangent, dtype=np.float64)
-        scale = w * c
-    elif reduction == "sum":
-        scale = w
-    else:
-        scale = w / np.sum(w)
-    # broadcast the per-example scale over trailing (class) axes
-    scale = scale.reshape(scale.shape + (1,) * (grads.ndim - scale.ndim))
-    return np.where(scale != 0, scale * grads, 0.0)

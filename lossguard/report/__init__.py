@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+from .._paths import writing
 from ..result import Result
 from .json_report import comparison_to_json, to_json, write_comparison_json, write_json
 from .markdown import comparison_to_markdown, to_markdown, write_comparison_markdown, write_markdown
@@ -25,14 +26,18 @@ __all__ = ["render", "render_comparison", "to_json", "comparison_to_json", "to_m
 def write_reports(result: Result, *, json_path: str | None = None, markdown_path: str | None = None) -> None:
     """Write whichever reports were asked for."""
     if json_path:
-        write_json(result, json_path)
+        with writing("json", json_path):
+            write_json(result, json_path)
     if markdown_path:
-        write_markdown(result, markdown_path)
+        with writing("markdown", markdown_path):
+            write_markdown(result, markdown_path)
 
 
 def write_comparison_reports(c: Comparison, *, json_path: str | None = None, markdown_path: str | None = None) -> None:
     """Write whichever comparison reports were asked for."""
     if json_path:
-        write_comparison_json(c, json_path)
+        with writing("json", json_path):
+            write_comparison_json(c, json_path)
     if markdown_path:
-        write_comparison_markdown(c, markdown_path)
+        with writing("markdown", markdown_path):
+            write_comparison_markdown(c, markdown_path)
