@@ -4,11 +4,12 @@ The plugin (:mod:`lossguard.pytest_plugin`) stores one :class:`_State` in ``conf
 holds the effective settings, the check results of each declaration run in this process, the
 declarations' evaluators (their compiled functions, a few kept alive at a time), and the failed
 checks for the closing summary. Running a battery never raises into pytest: :func:`_safely`
-turns any failure into the one line every item of the declaration then reports.
+turns any failure into a :class:`Problem` — what failed and its one-line message — that every
+item of the declaration then reports (the plugin renders it).
 
 Example:
     >>> _safely(lambda: 1 / 0, 7)
-    'lossguard could not run the battery (ZeroDivisionError: division by zero); please report it with seed=7'
+    Problem(what='defect', message='ZeroDivisionError: division by zero', seed=7)
 """
 
 from __future__ import annotations
@@ -16,19 +17,43 @@ from __future__ import annotations
 from collections import OrderedDict
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Literal, TypeVar
 
-from .errors import LossguardError
+from .errors import CheckNameError, LossCallError, LossguardError, SpecError, TargetLoadError
 from .spec import LossSpec
 
 if TYPE_CHECKING:
+    from .evaluate import Evaluator
     from .pytest_plugin import Battery
+    from .result import CheckResult, Result
 
-__all__ = ["_State", "_Declared", "_safely", "_run", "_new_evaluator"]
+__all__ = ["Problem", "What", "_State", "_Declared", "_safely", "_run", "_new_evaluator"]
+
+_T = TypeVar("_T")
+
+#: What failed, when the plugin has no verdict to show: the declaration itself (``battery()``,
+#: the fixture's arguments, a check name), loading or probing the loss, a call of the loss past
+#: its time limit, an output lossguard cannot use, another refusal of the run (a budget), or a
+#: defect of lossguard itself.
+What = Literal["declaration", "load", "timeout", "output", "run", "defect"]
 
 #: Most declarations whose Evaluator (its compiled functions, ~30 MB each) an xdist worker keeps
 #: alive (it cannot know which items come next); the least recently used is dropped.
 _LIVE_EVALUATORS = 4
+
+
+@dataclass(frozen=True)
+class Problem:
+    """Why the plugin has no verdict for an item: what failed and the one line saying why.
+
+    ``message`` is the error's own line (``"name=value: expected …; try …"`` for lossguard's
+    errors, ``"Type: first line"`` for a defect); ``seed`` is the seed to quote in a report of a
+    defect. :func:`lossguard.pytest_plugin.problem_text` renders it.
+    """
+
+    what: What
+    message: str
+    seed: int | None = None
 
 
 @dataclass(eq=False)
@@ -36,8 +61,8 @@ class _Declared:
     """A declaration in this process: its check results, its Evaluator (or why none) if kept."""
 
     battery: Battery  # kept alive here, so the id() it is filed under cannot be reused
-    results: dict[str, Any] = field(default_factory=dict)
-    evaluator: Any = None
+    results: dict[str, CheckResult | Problem] = field(default_factory=dict)
+    evaluator: Evaluator | Problem | None = None
 
 
 @dataclass
@@ -54,9 +79,9 @@ class _State:
     grouped: bool = False
     declared: dict[int, _Declared] = field(default_factory=dict)
     live: OrderedDict[int, None] = field(default_factory=OrderedDict)  # declarations with an Evaluator
-    failures: list[tuple[str, str]] = field(default_factory=list)
+    failures: list[tuple[str, str]] = field(default_factory=list)  # (node id, rendered account)
     workers: dict[str, set[str]] = field(default_factory=dict)  # declaration → xdist workers that ran it
-    adhoc: dict[tuple[Any, ...], tuple[LossSpec, Any]] = field(default_factory=dict)
+    adhoc: dict[tuple[Any, ...], tuple[LossSpec, Result | Problem]] = field(default_factory=dict)
 
     def budgets(self) -> dict[str, Any]:
         """The time and memory budgets, as keywords of :func:`lossguard.run`."""
@@ -67,8 +92,8 @@ class _State:
         return (self.settings["seed"] if seed is None else seed,
                 self.settings["effort"] if effort is None else effort)
 
-    def outcome(self, bat: Battery, items: Sequence[Any], check: str) -> Any:
-        """The CheckResult of ``check`` for ``bat``, or a one-line problem.
+    def outcome(self, bat: Battery, items: Sequence[Any], check: str) -> CheckResult | Problem:
+        """The CheckResult of ``check`` for ``bat``, or the :class:`Problem` that prevented it.
 
         When this process runs whole declarations (:attr:`whole`), the first item of one
         runs the checks of all its items in one battery (XLA compiles ahead for all of them);
@@ -87,11 +112,11 @@ class _State:
             wanted += [i.check for i in mine if i.check not in entry.results and i.check != check]
         if entry.evaluator is None:
             entry.evaluator = _safely(_new_evaluator, seed, bat.spec, self.budgets().get("call_timeout"))
-        if isinstance(entry.evaluator, str):
+        if isinstance(entry.evaluator, Problem):
             return entry.evaluator  # the loss could not even be probed: every item says so
         result = _safely(_run, seed, bat.spec, seed, effort, wanted, entry.evaluator, **self.budgets())
         for name in wanted:
-            entry.results[name] = result if isinstance(result, str) else result.check(name)
+            entry.results[name] = result if isinstance(result, Problem) else result.check(name)
         if whole:  # every item of the declaration is answered: its Evaluator is no longer needed
             entry.evaluator = None
             self.live.pop(id(bat), None)
@@ -103,7 +128,7 @@ class _State:
         return entry.results[check]
 
 
-def _new_evaluator(spec: LossSpec, call_timeout: float | None = None) -> Any:
+def _new_evaluator(spec: LossSpec, call_timeout: float | None = None) -> Evaluator:
     from ._deadline import Limits
     from ._guard import Guard
     from .evaluate import Evaluator
@@ -112,14 +137,29 @@ def _new_evaluator(spec: LossSpec, call_timeout: float | None = None) -> Any:
 
 
 def _run(spec: LossSpec, seed: int, effort: str, only: list[str] | None, evaluator: Any = None,
-         **budgets: Any) -> Any:
+         **budgets: Any) -> Result:
     from .runner import run
 
     return run(spec, seed=seed, effort=effort, only=only, evaluator=evaluator, **budgets)
 
 
-def _safely(fn: Callable[..., Any], seed: int, *args: Any, **kwargs: Any) -> Any:
-    """``fn(*args, **kwargs)``, or the one line saying why lossguard could not run the battery."""
+def _what(exc: BaseException) -> What:
+    """Which :data:`What` an exception raised while running a battery stands for."""
+    from ._deadline import CallTimeout, Stopped
+
+    if isinstance(exc, (LossCallError, TargetLoadError)):
+        return "load"
+    if isinstance(exc, CallTimeout):
+        return "timeout"
+    if isinstance(exc, Stopped):  # the other stop of the guard: an output lossguard cannot use
+        return "output"
+    if isinstance(exc, (SpecError, CheckNameError)):  # the declaration, or the checks it selects
+        return "declaration"
+    return "run" if isinstance(exc, LossguardError) else "defect"
+
+
+def _safely(fn: Callable[..., _T], seed: int, *args: Any, **kwargs: Any) -> _T | Problem:
+    """``fn(*args, **kwargs)``, or the :class:`Problem` that kept lossguard from running the battery."""
     from .adapters._base import first_line
 
     from ._deadline import Stopped
@@ -127,6 +167,6 @@ def _safely(fn: Callable[..., Any], seed: int, *args: Any, **kwargs: Any) -> Any
     try:
         return fn(*args, **kwargs)
     except (LossguardError, Stopped) as exc:
-        return f"lossguard could not run the battery: {exc}"
-    except Exception as exc:  # a defect in lossguard itself: one line, with the seed
-        return f"lossguard could not run the battery ({first_line(exc)}); please report it with seed={seed}"
+        return Problem(_what(exc), str(exc))
+    except Exception as exc:  # a defect in lossguard itself: its first line, with the seed
+        return Problem("defect", first_line(exc), seed)

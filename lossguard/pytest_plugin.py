@@ -38,7 +38,8 @@ yourself)::
 **Settings.** The run settings of :mod:`lossguard.options` (seed, effort) are pytest options
 (``--lossguard-seed 3``) and ini keys (``lossguard_effort = quick``); the command line wins over
 the ini file. The effective values are printed in the report header, and a closing section lists
-every failed check with its worst case. Items carry the marker ``lossguard`` (``-m lossguard``).
+every failed check with its worst case, and every item that got no verdict with its
+:class:`Problem` (what failed: the declaration, loading the loss, a timeout …) in one line. Items carry the marker ``lossguard`` (``-m lossguard``).
 """
 
 from __future__ import annotations
@@ -46,17 +47,17 @@ from __future__ import annotations
 import sys
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NoReturn
 
 import pytest
 
-from ._plugin_state import _run, _safely, _State
+from ._plugin_state import Problem, _run, _safely, _State
 from .errors import LossguardError
 from .result import CAUTION
 from .options import SETTINGS
 from .spec import LossSpec, declare
 
-__all__ = ["battery", "Battery", "CheckItem", "run_battery"]
+__all__ = ["battery", "Battery", "CheckItem", "Problem", "problem_text", "run_battery"]
 
 _MARKER = "lossguard"
 
@@ -67,11 +68,11 @@ class Battery:
     """A declared loss waiting to be collected as one test item per check.
 
     Build it with :func:`battery`. ``spec`` is ``None`` when the declaration itself was bad;
-    ``problem`` then says why (every collected item fails with that one line).
+    ``problem`` then says why (every collected item fails with its one line).
     """
 
     spec: LossSpec | None
-    problem: str = ""
+    problem: Problem | None = None
     only: tuple[str, ...] | None = None
     seed: int | None = None
     effort: str | None = None
@@ -88,14 +89,18 @@ class Battery:
         return [(check.name, reason) for check, reason in select_checks(self.spec, only)]
 
 
-def _declared(loss: Any, declaration: dict[str, Any]) -> LossSpec:
+def _declared(loss: Any, declaration: dict[str, Any]) -> LossSpec | Problem:
+    """The declared spec, or the declaration :class:`Problem` (never an exception into pytest)."""
     if isinstance(loss, LossSpec):
         if declaration:
-            raise LossguardError(
-                f"declaration={sorted(declaration)}: expected no declaration arguments next to a "
-                f"LossSpec; try passing either the spec or the loss with its arguments")
+            return Problem("declaration", f"declaration={sorted(declaration)}: expected no declaration arguments "
+                                          f"next to a LossSpec; try passing either the spec or the loss with its "
+                                          f"arguments")
         return loss
-    return declare(loss, **declaration)
+    try:
+        return declare(loss, **declaration)
+    except LossguardError as exc:
+        return Problem("declaration", str(exc))
 
 
 def battery(
@@ -131,10 +136,9 @@ def battery(
     where = {"module": str(caller.f_globals.get("__name__", "")), "lineno": caller.f_lineno - 1}
     settings = {"only": tuple(only) if only is not None else None, "seed": seed, "effort": effort,
                 "marks": tuple(marks)}
-    try:
-        spec = _declared(loss, declaration)
-    except LossguardError as exc:
-        return Battery(spec=None, problem=str(exc), **settings, **where)
+    spec = _declared(loss, declaration)
+    if isinstance(spec, Problem):
+        return Battery(spec=None, problem=spec, **settings, **where)
     return Battery(spec=spec, **settings, **where)
 
 
@@ -162,11 +166,10 @@ class CheckItem(pytest.Item):
         self.user_properties.append(("lossguard_check", check))
 
     def runtest(self) -> None:
-        if self.battery.spec is None:
-            raise CheckFailed(self.battery.problem)
-        result = _state(self.config).outcome(self.battery, self.session.items, self.check)
-        if isinstance(result, str):
-            raise CheckFailed(result)
+        result = self.battery.problem or _state(self.config).outcome(self.battery, self.session.items, self.check)
+        if isinstance(result, Problem):
+            self.user_properties += [(_PROBLEM_PROPERTY, result.what), (_FAILURE_PROPERTY, problem_text(result))]
+            raise CheckFailed(problem_text(result))
         self.user_properties.append(("lossguard_verdict", result.verdict))
         if result.verdict == "skip":
             pytest.skip(result.summary)
@@ -212,8 +215,8 @@ def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[py
     try:
         selection = obj.selection()
     except LossguardError as exc:
-        return [item("declaration", Battery(spec=None, problem=str(exc), marks=obj.marks, module=obj.module,
-                                            lineno=obj.lineno))]
+        return [item("declaration", Battery(spec=None, problem=Problem("declaration", str(exc)), marks=obj.marks,
+                                            module=obj.module, lineno=obj.lineno))]
     return [item(check, obj, reason) for check, reason in selection]
 
 
@@ -221,10 +224,27 @@ def pytest_pycollect_makeitem(collector: Any, name: str, obj: object) -> list[py
 _STATE = pytest.StashKey[_State]()
 #: user property carrying a failed check's one-line account (travels through xdist and JUnit XML)
 _FAILURE_PROPERTY = "lossguard_failure"
+#: user property saying what failed when an item has no verdict (:attr:`Problem.what`)
+_PROBLEM_PROPERTY = "lossguard_problem"
 
 
 def _state(config: Any) -> _State:
     return config.stash[_STATE]
+
+
+def problem_text(p: Problem) -> str:
+    """The one line an item (and the closing section) shows for a :class:`Problem`.
+
+    Example:
+        >>> problem_text(Problem("declaration", "kind='categorial': expected one of …; try 'categorical'"))
+        "lossguard could not read the declaration: kind='categorial': expected one of …; try 'categorical'"
+        >>> problem_text(Problem("defect", "KeyError: 'rows'", seed=3))
+        "lossguard could not run the battery (KeyError: 'rows'); please report it with seed=3"
+    """
+    if p.what == "defect":
+        return f"lossguard could not run the battery ({p.message}); please report it with seed={p.seed}"
+    doing = "read the declaration" if p.what == "declaration" else "run the battery"
+    return f"lossguard could not {doing}: {p.message}"
 
 
 def failure_report(c: Any) -> str:
@@ -352,21 +372,25 @@ def run_battery(request: Any) -> Callable[..., Any]:
     """
     state = _state(request.config)
 
+    def fail(problem: Problem) -> NoReturn:
+        request.node.user_properties += [(_PROBLEM_PROPERTY, problem.what),
+                                         (_FAILURE_PROPERTY, problem_text(problem))]
+        pytest.fail(problem_text(problem), pytrace=False)
+
     def go(loss: Callable[..., Any] | LossSpec, *, only: Sequence[str] | None = None,
            seed: int | None = None, effort: str | None = None, require_pass: bool = True,
            **declaration: Any) -> Any:
-        try:
-            spec = _declared(loss, declaration)
-        except LossguardError as exc:
-            pytest.fail(str(exc), pytrace=False)
+        spec = _declared(loss, declaration)
+        if isinstance(spec, Problem):
+            fail(spec)
         s, e = state.resolve(seed, effort)
         chosen = list(only) if only is not None else None
         key = (id(spec), s, e, tuple(chosen) if chosen is not None else None)
         if key not in state.adhoc or state.adhoc[key][0] is not spec:
             state.adhoc[key] = (spec, _safely(_run, s, spec, s, e, chosen, **state.budgets()))
         result = state.adhoc[key][1]
-        if isinstance(result, str):
-            pytest.fail(result, pytrace=False)
+        if isinstance(result, Problem):
+            fail(result)
         if require_pass and not result.ok:
             bad = [c for c in result.checks if not c.ok]
             request.node.user_properties.extend((_FAILURE_PROPERTY, failure_text(c)) for c in bad)

@@ -298,6 +298,39 @@ not_a_test_name = battery(good_ce, kind="categorical", only=["finite"])
     assert [line for line in result.outlines if "::" in line] == ["test_losses.py::test_typo[declaration]"]
 
 
+def test_a_declaration_problem_is_one_line_in_its_item_and_in_the_closing_section(
+    pytester: pytest.Pytester,
+) -> None:
+    """A bad declaration (collected) and a bad fixture call: each item fails with the problem's one
+    line, says what failed in a property (JUnit XML), and is listed in the closing section."""
+    _project(pytester, body='''
+from lossguard.pytest_plugin import battery
+from scratch_losses import good_ce
+
+test_typo = battery(good_ce, kind="categorial", only=["reference"])
+
+def test_fixture_typo(run_battery):
+    run_battery(good_ce, kind="categorical", reference="categoricl_ce")
+''')
+    result = pytester.runpytest_inprocess("-p", "no:cacheprovider", "--junitxml=out.xml")
+    result.assert_outcomes(failed=2)
+    kind = "lossguard could not read the declaration: kind='categorial': expected one of binary, categorical"
+    ref = "lossguard could not read the declaration: reference='categoricl_ce': expected "
+    lines = result.stdout.lines
+    closing = lines[next(i for i, line in enumerate(lines) if "lossguard: failed checks" in line):]
+    assert closing[1] == "test_losses.py::test_typo[declaration]" and closing[2].startswith("    " + kind)
+    assert closing[3] == "test_losses.py::test_fixture_typo" and closing[4].startswith("    " + ref)
+    # the failure sections: the item's own line, once each and alone (the short summary may cut it)
+    assert sum(line.startswith(kind) for line in lines) == 1
+    assert sum(line.startswith(ref) for line in lines) == 1
+    assert not any(line.startswith(ref.split(": ", 1)[1]) for line in lines)  # no raw error before it
+    props = {case.get("name"): {p.get("name"): p.get("value") for p in case.iter("property")}
+             for case in ET.parse(pytester.path / "out.xml").getroot().iter("testcase")}
+    assert props["test_typo[declaration]"]["lossguard_problem"] == "declaration"
+    assert props["test_fixture_typo"]["lossguard_problem"] == "declaration"
+    assert "Traceback" not in result.stdout.str()
+
+
 def _junit(path) -> dict[str, str]:  # type: ignore[no-untyped-def]
     out = {}
     for case in ET.parse(path).getroot().iter("testcase"):
