@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -50,7 +50,7 @@ from .checks._compare import Mismatch, examples_from
 from .checks._scales import case_scale, gradient_term_scale
 from .errors import SpecError
 from .evaluate import Evaluator
-from .result import CAUTION, CheckResult, Example
+from .result import CAUTION, CheckResult, Example, RunRecord
 from .spec import LossSpec
 from .tolerance import op_count, rounding_allowance, unit_roundoff
 
@@ -60,43 +60,33 @@ DTYPES_COMPARED = ("float64", "float32")
 _SHRINK_ROUNDS = 40
 
 
-@dataclass
-class Comparison:
+@dataclass(kw_only=True)
+class Comparison(RunRecord):
     """What ``compare`` found. ``parts`` holds one verdict per (quantity, dtype).
 
     ``largest`` is the case where the two differ most (relative to the allowance; a non-finite
     value against a finite one counts as infinitely far), with ``got`` = NEW and ``expected`` =
-    OLD; ``smallest`` is the shrunk input that still shows the same divergence.
+    OLD; ``smallest`` is the shrunk input that still shows the same divergence. ``exit_code``:
+    0 when the implementations agree, 1 when they diverge.
     """
 
     old: str
     new: str
-    spec: dict[str, Any]
-    seed: int
-    effort: str
     parts: list[CheckResult]
     largest: Example | None = None
     smallest: Example | None = None
-    evaluation: dict[str, Any] = field(default_factory=dict)
-    versions: dict[str, str] = field(default_factory=dict)
-    seconds: float = 0.0
-    loss_evaluations: int = 0
+
+    def _verdicts(self) -> list[CheckResult]:
+        return self.parts
 
     @property
     def agree(self) -> bool:
-        return all(p.verdict in ("pass", "skip") for p in self.parts)
-
-    @property
-    def exit_code(self) -> int:
-        """0 when the implementations agree, 1 when they diverge (2 is left to the caller)."""
-        return 0 if self.agree else 1
+        """True when every part passed (or was skipped): :attr:`ok` by its name for a comparison."""
+        return self.ok
 
     def to_dict(self) -> dict[str, Any]:
         return {
-            "old": self.old, "new": self.new, "spec": self.spec, "seed": self.seed,
-            "effort": self.effort, "versions": self.versions, "evaluation": self.evaluation,
-            "seconds": self.seconds, "loss_evaluations": self.loss_evaluations, "agree": self.agree,
-            "caution": CAUTION,
+            "old": self.old, "new": self.new, **self._record(), "agree": self.agree, "caution": CAUTION,
             "parts": [p.to_dict() for p in self.parts],
             "largest": self.largest.to_dict() if self.largest else None,
             "smallest": self.smallest.to_dict() if self.smallest else None,

@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Example", "CheckResult", "Result", "VERDICTS", "CAUTION"]
+__all__ = ["Example", "CheckResult", "RunRecord", "Result", "VERDICTS", "CAUTION"]
 
 #: Said by every output: what a pass does and does not establish.
 CAUTION = "a pass is evidence from the inputs tried, not proof"
@@ -98,29 +98,52 @@ class CheckResult:
         return d
 
 
-@dataclass
-class Result:
-    """Everything a battery produced for one declared loss."""
+@dataclass(kw_only=True)
+class RunRecord:
+    """What every run of the engine records beside its verdicts (a battery's :class:`Result`, a
+    :class:`~lossguard.compare.Comparison`): the declaration, seed and effort, the versions of
+    what ran, how the loss was evaluated, the wall time and the number of loss evaluations.
 
-    target: str
+    A subclass names its verdicts in :meth:`_verdicts`; ``ok`` and ``exit_code`` read them.
+    """
+
     spec: dict[str, Any]
     seed: int
     effort: str
-    checks: list[CheckResult]
     evaluation: dict[str, Any] = field(default_factory=dict)
     versions: dict[str, str] = field(default_factory=dict)
     seconds: float = 0.0
     loss_evaluations: int = 0
 
+    def _verdicts(self) -> list[CheckResult]:
+        """The verdicts of this run."""
+        raise NotImplementedError
+
     @property
     def ok(self) -> bool:
-        """True when no check failed or errored."""
-        return all(c.ok for c in self.checks)
+        """True when no part failed or errored."""
+        return all(c.ok for c in self._verdicts())
 
     @property
     def exit_code(self) -> int:
-        """0 when every check passed (or was skipped), 1 otherwise."""
+        """0 when every part passed (or was skipped), 1 otherwise (2, bad input, is the caller's)."""
         return 0 if self.ok else 1
+
+    def _record(self) -> dict[str, Any]:
+        """The shared fields, in the order the JSON documents list them."""
+        return {"spec": self.spec, "seed": self.seed, "effort": self.effort, "versions": self.versions,
+                "evaluation": self.evaluation, "seconds": self.seconds, "loss_evaluations": self.loss_evaluations}
+
+
+@dataclass(kw_only=True)
+class Result(RunRecord):
+    """Everything a battery produced for one declared loss: one :class:`CheckResult` per check."""
+
+    target: str
+    checks: list[CheckResult]
+
+    def _verdicts(self) -> list[CheckResult]:
+        return self.checks
 
     def check(self, name: str) -> CheckResult:
         for c in self.checks:
@@ -129,16 +152,5 @@ class Result:
         raise KeyError(name)
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "target": self.target,
-            "spec": self.spec,
-            "seed": self.seed,
-            "effort": self.effort,
-            "versions": self.versions,
-            "evaluation": self.evaluation,
-            "seconds": self.seconds,
-            "loss_evaluations": self.loss_evaluations,
-            "ok": self.ok,
-            "caution": CAUTION,
-            "checks": [c.to_dict() for c in self.checks],
-        }
+        return {"target": self.target, **self._record(), "ok": self.ok, "caution": CAUTION,
+                "checks": [c.to_dict() for c in self.checks]}

@@ -23,21 +23,16 @@ __all__ = ["render", "render_comparison", "to_json", "comparison_to_json", "to_m
            "write_comparison_reports", "progress_for", "wants_colour"]
 
 
-def write_reports(result: Result, *, json_path: str | None = None, markdown_path: str | None = None) -> None:
-    """Write whichever reports were asked for."""
-    if json_path:
-        with writing("json", json_path):
-            write_json(result, json_path)
-    if markdown_path:
-        with writing("markdown", markdown_path):
-            write_markdown(result, markdown_path)
+def write_reports(run: Result | Comparison, *, json_path: str | None = None,
+                  markdown_path: str | None = None) -> None:
+    """Write whichever reports were asked for, of a battery's result or of a comparison."""
+    battery = isinstance(run, Result)
+    for form, path, write in (("json", json_path, write_json if battery else write_comparison_json),
+                              ("markdown", markdown_path, write_markdown if battery else write_comparison_markdown)):
+        if path:
+            with writing(form, path):
+                write(run, path)  # type: ignore[arg-type]  (the writer matches the kind of run)
 
 
-def write_comparison_reports(c: Comparison, *, json_path: str | None = None, markdown_path: str | None = None) -> None:
-    """Write whichever comparison reports were asked for."""
-    if json_path:
-        with writing("json", json_path):
-            write_comparison_json(c, json_path)
-    if markdown_path:
-        with writing("markdown", markdown_path):
-            write_comparison_markdown(c, markdown_path)
+#: the same function, by the name the compare command first used
+write_comparison_reports = write_reports
