@@ -30,7 +30,7 @@ from numpy.typing import ArrayLike
 
 from .._suggest import bad_value, did_you_mean
 from ..errors import SpecError
-from ._base import PROPERTIES, Param, Reference
+from ._base import PROPERTIES, Forms, Param, Reference
 from ._stack import reduce_stack, stack_rows
 from .bce import BCE
 from .ce import CATEGORICAL_CE, SMOOTHED_CE, softmax_ce_hessian
@@ -40,6 +40,7 @@ from .kl import KL_DIVERGENCE
 __all__ = [
     "REFERENCES",
     "PROPERTIES",
+    "Forms",
     "Param",
     "Reference",
     "get_reference",

@@ -24,11 +24,11 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
-__all__ = ["Param", "Reference", "PROPERTIES"]
+__all__ = ["Forms", "Param", "Reference", "PROPERTIES"]
 
 #: Property names a reference may declare.
 PROPERTIES = frozenset({"nonnegative", "convex", "shift_invariant", "proper", "class_symmetric"})
@@ -54,7 +54,23 @@ class Param:
     per_class: bool = False
 
 
-@dataclass(frozen=True)
+class Forms(NamedTuple):
+    """One per-example formula in the three forms every reference gives.
+
+    Args:
+        value: ``(z, y, inputs=..., **params) -> ℓ`` float64 numpy, one value per example
+            (binary: one per element).
+        grad: ``(z, y, inputs=..., **params) -> ∂ℓ_i/∂z_i`` float64, shape of ``z``, derived by hand.
+        jax: the same formula written with ``jax.numpy`` (for autodiff and as an example of a
+            stable implementation).
+    """
+
+    value: Callable[..., np.ndarray]
+    grad: Callable[..., np.ndarray]
+    jax: Callable[..., Any]
+
+
+@dataclass(frozen=True, kw_only=True)
 class Reference:
     """A reference loss with a float64 value, a hand-derived gradient and a JAX version.
 
@@ -63,37 +79,52 @@ class Reference:
         summary: one line.
         formula: the per-example formula in plain text.
         kinds: target kinds it is defined for (subset of binary, categorical, distribution).
-        inputs: input spaces it accepts (subset of logits, probabilities).
-        params: its parameters.
-        per_example: ``(z, y, inputs=..., **params) -> ℓ`` float64 numpy, one value per example
-            (binary: one per element).
-        per_example_grad: ``(z, y, inputs=..., **params) -> ∂ℓ_i/∂z_i`` float64, shape of ``z``.
-        jax_per_example: the same formula written with ``jax.numpy`` (for autodiff and as an
-            example of a stable implementation).
+        inputs: input spaces it accepts (subset of logits, probabilities); default logits only.
+        params: its parameters (default none).
+        forms: its formula as float64 value, hand-derived gradient and JAX twin (read them as
+            ``per_example``, ``per_example_grad`` and ``jax_per_example``).
         properties: subset of :data:`PROPERTIES` it satisfies in logits (or in its inputs).
         target_domain: ``"soft"`` if every target in the kind's domain is allowed, ``"hard"`` if
             binary targets must be exactly 0 or 1 (or distribution targets one-hot) for the
             formula to be the published one; comparisons draw targets only from this domain.
+            Default ``"soft"``.
         citation: authors, title, venue, year.
         example_weights: ``(y, **params) -> w`` per-example weights before masking (class weights
-            of the labels); ``None`` means all ones.
+            of the labels); ``None`` (the default) means all ones.
+        notes: where the properties or the reduction depart from the plain formula.
+
+    Every argument is a keyword; the defaults are what most references declare (logits in,
+    no parameters, any target of the kind's domain, unweighted examples).
     """
 
     name: str
     summary: str
     formula: str
     kinds: frozenset[str]
-    inputs: frozenset[str]
-    params: tuple[Param, ...]
-    per_example: Callable[..., np.ndarray]
-    per_example_grad: Callable[..., np.ndarray]
-    jax_per_example: Callable[..., Any]
+    inputs: frozenset[str] = frozenset({"logits"})
+    params: tuple[Param, ...] = ()
+    forms: Forms
     properties: frozenset[str]
-    target_domain: str
+    target_domain: str = "soft"
     citation: str
     example_weights: Callable[..., np.ndarray] | None = None
     notes: str = ""
     defaults: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def per_example(self) -> Callable[..., np.ndarray]:
+        """The float64 per-example value (:attr:`Forms.value`)."""
+        return self.forms.value
+
+    @property
+    def per_example_grad(self) -> Callable[..., np.ndarray]:
+        """The hand-derived per-example gradient (:attr:`Forms.grad`)."""
+        return self.forms.grad
+
+    @property
+    def jax_per_example(self) -> Callable[..., Any]:
+        """The ``jax.numpy`` twin (:attr:`Forms.jax`)."""
+        return self.forms.jax
 
     def param_names(self) -> tuple[str, ...]:
         return tuple(p.name for p in self.params)

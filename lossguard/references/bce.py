@@ -40,7 +40,7 @@ import jax.numpy as jnp
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ._base import Param, Reference
+from ._base import Forms, Param, Reference
 from ._stable import f64, j_softplus, sigmoid, softplus, xlog1py, xlogy
 
 __all__ = ["BCE", "bce_per_example", "bce_per_example_grad", "bce_jax"]
@@ -148,24 +148,13 @@ BCE = Reference(
     formula="(1 − y) z + (1 + (w − 1) y) softplus(−z)  |  −[w y log p + (1 − y) log(1 − p)]",
     kinds=frozenset({"binary"}),
     inputs=frozenset({"logits", "probabilities"}),
-    params=(
-        Param(
-            name="pos_weight",
-            default=None,
-            doc="multiplier w of the positive term w·y·log p (None = 1)",
-            validate=_check_pos_weight,
-        ),
-    ),
-    per_example=bce_per_example,
-    per_example_grad=bce_per_example_grad,
-    jax_per_example=bce_jax,
+    params=(Param("pos_weight", None, "multiplier w of the positive term w·y·log p (None = 1)", _check_pos_weight),),
+    forms=Forms(bce_per_example, bce_per_example_grad, bce_jax),
     properties=frozenset({"convex", "nonnegative", "proper"}),
-    target_domain="soft",
     citation=(
         "Cox, D. R., 'The Regression Analysis of Binary Sequences', Journal of the Royal "
         "Statistical Society B, 1958"
     ),
-    example_weights=None,
     notes=(
         "properties are those of pos_weight=None; with pos_weight != 1 the loss is convex and "
         "nonnegative but not proper. Probabilities of exactly 0 or 1 give +inf where the target "

@@ -50,7 +50,7 @@ import jax.numpy as jnp
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ._base import Param, Reference
+from ._base import Forms, Param, Reference
 from ._stable import (f64, j_log_softmax, j_take_label, label_log_softmax, log_softmax, onehot, softmax,
                       take_label, xlogy)
 
@@ -316,20 +316,10 @@ CATEGORICAL_CE = Reference(
     formula="−log softmax(z)_y  |  −Σ_c w_c y_c log softmax(z)_c  (probabilities: log p)",
     kinds=frozenset({"categorical", "distribution"}),
     inputs=frozenset({"logits", "probabilities"}),
-    params=(
-        Param(
-            name="weight",
-            default=None,
-            doc="per-class weights w_c (labels: example weight w_y; rows: inside the sum)",
-            validate=_check_weight,
-            per_class=True,
-        ),
-    ),
-    per_example=ce_per_example,
-    per_example_grad=ce_per_example_grad,
-    jax_per_example=ce_jax,
+    params=(Param("weight", None, "per-class weights w_c (labels: example weight w_y; rows: inside the sum)",
+                  _check_weight, per_class=True),),
+    forms=Forms(ce_per_example, ce_per_example_grad, ce_jax),
     properties=frozenset({"convex", "shift_invariant", "proper", "nonnegative", "class_symmetric"}),
-    target_domain="soft",
     citation=(
         "Good, I. J., 'Rational Decisions', Journal of the Royal Statistical Society B, 1952; "
         "Bridle, J. S., 'Probabilistic Interpretation of Feedforward Classification Network "
@@ -348,24 +338,12 @@ SMOOTHED_CE = Reference(
     summary="softmax cross-entropy against the label-smoothed target (1 − ε) onehot + ε/C",
     formula="−Σ_c [(1 − ε) [c = y] + ε/C] log softmax(z)_c",
     kinds=frozenset({"categorical"}),
-    inputs=frozenset({"logits"}),
-    params=(
-        Param(
-            name="epsilon",
-            default=0.1,
-            doc="smoothing mass ε ∈ [0, 1) spread uniformly over the C classes",
-            validate=_check_epsilon,
-        ),
-    ),
-    per_example=smoothed_per_example,
-    per_example_grad=smoothed_per_example_grad,
-    jax_per_example=smoothed_jax,
+    params=(Param("epsilon", 0.1, "smoothing mass ε ∈ [0, 1) spread uniformly over the C classes", _check_epsilon),),
+    forms=Forms(smoothed_per_example, smoothed_per_example_grad, smoothed_jax),
     properties=frozenset({"convex", "shift_invariant", "nonnegative", "class_symmetric"}),
-    target_domain="soft",
     citation=(
         "Szegedy, C., Vanhoucke, V., Ioffe, S., Shlens, J., Wojna, Z., 'Rethinking the Inception "
         "Architecture for Computer Vision', CVPR 2016"
     ),
-    example_weights=None,
     notes="not proper for epsilon > 0; with epsilon = 0 it equals categorical_ce.",
 )

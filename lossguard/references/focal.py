@@ -53,7 +53,7 @@ import jax.numpy as jnp
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ._base import Param, Reference
+from ._base import Forms, Param, Reference
 from ._stable import (f64, j_log1m_softmax_at, j_log_sigmoid, j_log_softmax, j_pow_from_log,
                       j_take_label, log1m_softmax_at, log_sigmoid, log_softmax, pow_from_log,
                       sigmoid, take_label)
@@ -290,42 +290,35 @@ def focal_multiclass_jax(z: jax.Array, y: jax.Array, inputs: str = "logits", gam
 _GAMMA = Param(name="gamma", default=2.0, doc="focusing exponent γ ≥ 0 (0 gives cross-entropy)",
                validate=_check_gamma)
 
-FOCAL_BINARY = Reference(
+
+def _focal(*, alpha: Param, notes: str, **fields: Any) -> Reference:
+    """A focal reference: what both focal losses share (γ first among the parameters, the
+    citation, and the note on convexity and propriety) added to its own ``fields``."""
+    return Reference(params=(_GAMMA, alpha), citation=_CITATION,
+                     notes=f"{notes} Not convex, not proper for gamma > 0.", **fields)
+
+
+FOCAL_BINARY = _focal(
     name="focal_binary",
     summary="sigmoid focal loss −α_t (1 − p_t)^γ log p_t, stable in log space",
     formula="−α_t (1 − p_t)^γ log p_t,  p_t = σ((2y − 1) z),  α_t = α y + (1 − α)(1 − y)",
-    kinds=frozenset({"binary"}), inputs=frozenset({"logits"}),
-    params=(_GAMMA, Param("alpha", 0.25, "weight α of positives (1 − α for negatives), None = 1",
-                          _check_alpha_binary)),
-    per_example=focal_binary_per_example,
-    per_example_grad=focal_binary_per_example_grad,
-    jax_per_example=focal_binary_jax,
+    kinds=frozenset({"binary"}),
+    alpha=Param("alpha", 0.25, "weight α of positives (1 − α for negatives), None = 1", _check_alpha_binary),
+    forms=Forms(focal_binary_per_example, focal_binary_per_example_grad, focal_binary_jax),
     properties=frozenset({"nonnegative"}),
     target_domain="hard",
-    citation=_CITATION,
-    notes=(
-        "soft targets follow the generalisation 1 − p_t = y(1 − p) + (1 − y)p with the soft "
-        "cross-entropy in place of −log p_t; comparisons use hard targets only. Not convex, not "
-        "proper for gamma > 0."
-    ),
+    notes=("soft targets follow the generalisation 1 − p_t = y(1 − p) + (1 − y)p with the soft "
+           "cross-entropy in place of −log p_t; comparisons use hard targets only."),
 )
 
-FOCAL_MULTICLASS = Reference(
+FOCAL_MULTICLASS = _focal(
     name="focal_multiclass",
     summary="softmax focal loss −α_y (1 − p_y)^γ log p_y, stable in log space",
     formula="−α_y (1 − p_y)^γ log softmax(z)_y",
-    kinds=frozenset({"categorical"}), inputs=frozenset({"logits"}),
-    params=(_GAMMA, Param("alpha", None, "None, one number, or a per-class list α_c (weight α_y)",
-                          _check_alpha_multi)),
-    per_example=focal_multiclass_per_example,
-    per_example_grad=focal_multiclass_per_example_grad,
-    jax_per_example=focal_multiclass_jax,
+    kinds=frozenset({"categorical"}),
+    alpha=Param("alpha", None, "None, one number, or a per-class list α_c (weight α_y)", _check_alpha_multi),
+    forms=Forms(focal_multiclass_per_example, focal_multiclass_per_example_grad, focal_multiclass_jax),
     properties=frozenset({"nonnegative", "shift_invariant", "class_symmetric"}),
-    target_domain="soft",
-    citation=_CITATION,
-    notes=(
-        "class_symmetric holds for alpha=None or a scalar alpha (the default is None); a "
-        "per-class alpha breaks it. alpha multiplies inside the per-example loss, so a mean "
-        "divides by N. Not convex, not proper for gamma > 0."
-    ),
+    notes=("class_symmetric holds for alpha=None or a scalar alpha (the default is None); a "
+           "per-class alpha breaks it. alpha multiplies inside the per-example loss, so a mean divides by N."),
 )

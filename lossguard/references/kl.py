@@ -29,7 +29,7 @@ import jax.numpy as jnp
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ._base import Reference
+from ._base import Forms, Reference
 from ._stable import f64, j_log_softmax, j_xlogy, log_softmax, softmax, xlogy
 
 __all__ = ["KL_DIVERGENCE", "kl_per_example", "kl_per_example_grad", "kl_jax"]
@@ -99,17 +99,11 @@ KL_DIVERGENCE = Reference(
     summary="KL(y ‖ softmax(z)) for target distributions, 0 · log 0 = 0",
     formula="Σ_c y_c (log y_c − log softmax(z)_c)",
     kinds=frozenset({"distribution"}),
-    inputs=frozenset({"logits"}),
-    params=(),
-    per_example=kl_per_example,
-    per_example_grad=kl_per_example_grad,
-    jax_per_example=kl_jax,
+    forms=Forms(kl_per_example, kl_per_example_grad, kl_jax),
     properties=frozenset({"convex", "shift_invariant", "proper", "nonnegative", "class_symmetric"}),
-    target_domain="soft",
     citation=(
         "Kullback, S., Leibler, R. A., 'On Information and Sufficiency', The Annals of "
         "Mathematical Statistics, 1951"
     ),
-    example_weights=None,
     notes="equals categorical_ce minus the target entropy; same gradient p − y.",
 )
