@@ -9,8 +9,9 @@ Checks never print and never touch global state.
 from __future__ import annotations
 
 import zlib
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
@@ -19,11 +20,11 @@ from .._range import Beyond, case_reach, describe_max_logit, judged_dtypes
 from ..cases import CaseStack, Cell, cases_per_cell, concat, ladder_stack, random_stack, shape_menu, target_domain
 from ..effort import Effort, get_effort
 from ..evaluate import Evaluator
-from ..result import CheckResult
+from ..result import CheckResult, Example
 from ..spec import LossSpec
 from ..tolerance import DTYPES
 
-__all__ = ["Check", "Context", "EAGER_DTYPE", "always", "never", "only", "planned", "within"]
+__all__ = ["Check", "Context", "EAGER_DTYPE", "always", "conclude", "never", "only", "planned", "within"]
 
 #: The dtype of plain (not jitted) calls. A plain call compiles every primitive of the loss once
 #: per (shape, dtype), so every check that makes them uses this dtype and ``Context.eager_cell``.
@@ -76,6 +77,30 @@ class Check:
     skip_hint: str = ""
     order: int = 50
     compiles: Callable[[Context], list[tuple[str, str, Cell]]] | None = None
+
+
+def conclude(name: str, *, summary: str, cases: int, failed: int, allowance: str, worst: Sequence[Example] = (),
+             hint: str = "", details: dict[str, Any] | None = None, judged: int | None = None,
+             most: int = 3) -> CheckResult:
+    """How every check ends: its verdict from the counts, in one :class:`~lossguard.result.CheckResult`.
+
+    ``fail`` when ``failed`` > 0; otherwise ``pass``, or ``skip`` ("nothing to judge: …") when
+    none of the ``cases`` could be judged (``judged``, default ``cases``). The ``hint`` is kept
+    only on a failure, and the ``most`` first of ``worst``. The runner times the check.
+
+    Example:
+        >>> conclude("shift", summary="unchanged on 4 cases", cases=4, failed=0, allowance="exact",
+        ...          hint="never shown on a pass").verdict
+        'pass'
+        >>> conclude("finite", summary="finite on all 0 judged cases", cases=3, failed=0, allowance="",
+        ...          judged=0).summary
+        'nothing to judge: finite on all 0 judged cases'
+    """
+    judged = cases if judged is None else judged
+    verdict = "fail" if failed else "pass" if judged else "skip"
+    return CheckResult(name=name, verdict=verdict, summary=summary if judged or failed else f"nothing to judge: {summary}",
+                       cases=cases, failed=failed, allowance=allowance, worst=list(worst[:most]),
+                       hint=hint if failed else "", details=dict(details or {}))
 
 
 def within(ctx: Context) -> str:

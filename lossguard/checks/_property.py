@@ -16,7 +16,6 @@ Example:
 
 from __future__ import annotations
 
-import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, TypeVar
@@ -30,6 +29,8 @@ from ..errors import LossCallError
 from ..evaluate import NoGradient
 from ..result import CheckResult, Example
 from ..spec import LossSpec
+from ..strategies import cases
+from ._base import conclude
 from ._compare import Mismatch, examples_from, replay
 
 __all__ = ["Part", "Tally", "cell_of", "single", "mismatch_examples", "value_and_grad"]
@@ -185,8 +186,26 @@ class Tally:
         self.worst.insert(0, example)
         self.search = f"shrunk by a Hypothesis search (seed {s}, {found.evaluations} evaluations)"
 
-    def result(self, t0: float, *, passed: str, failed: str, hint: str,
-               details: dict[str, Any] | None = None) -> CheckResult:
+    def sweep(self, ctx: Any, judge: Callable[[Cell, CaseStack], tuple[list[Part], np.ndarray | None]],
+              judge_one: Callable[[CaseStack], list[Part]]) -> None:
+        """Judge the standard cases of every cell, then shrink at the first cell that failed.
+
+        ``judge(cell, stack)`` returns the parts of a stack and which of its cases were not
+        judged (``None``: all were); ``judge_one(stack)`` the parts of a one-case stack that the
+        search builds from a case of that cell (:func:`single`).
+        """
+        failing = None
+        for cell in ctx.cells:
+            stack = ctx.standard_cases(cell)
+            parts, unjudged = judge(cell, stack)
+            self.add(parts, len(stack))
+            self.unjudged += 0 if unjudged is None else int(np.sum(unjudged))
+            if failing is None and any(p.bad.any() for p in parts):
+                failing = cell
+        if failing is not None:
+            self.shrink(ctx, cases(ctx.spec, shapes=[failing]), lambda case: judge_one(single(ctx.spec, *case)))
+
+    def result(self, *, passed: str, failed: str, hint: str, details: dict[str, Any] | None = None) -> CheckResult:
         """The verdict: ``failed``/``passed`` are summary stems completed with the counts."""
         extra = dict(details or {})
         extra["cases_not_judged"] = self.unjudged
@@ -196,14 +215,9 @@ class Tally:
         if self.failed:
             which = "; ".join(f"{w}: {n}" for w, n in self.failures_by_part.items())
             summary = f"{failed} on {self.failed} of {self.cases} cases ({which})"
-            verdict = "fail"
         else:
             summary = f"{passed} on {self.cases} cases (largest error {self.closest:.2g} of its allowance)"
-            verdict = "pass"
         if self.unjudged:
             summary += f"; {self.unjudged} not judged (non-finite values: the finite check's business)"
-        return CheckResult(
-            name=self.name, verdict=verdict, summary=summary, cases=self.cases, failed=self.failed,
-            allowance="; ".join(self.rules), worst=self.worst[:3], hint=hint if self.failed else "",
-            details=extra, seconds=time.perf_counter() - t0,
-        )
+        return conclude(self.name, summary=summary, cases=self.cases, failed=self.failed,
+                        allowance="; ".join(self.rules), worst=self.worst, hint=hint, details=extra)

@@ -37,7 +37,6 @@ Example:
 
 from __future__ import annotations
 
-import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -214,7 +213,6 @@ def _judge(ctx: Context, case: tuple, with_halves: bool) -> list[Part]:  # type:
 
 
 def _run(ctx: Context) -> CheckResult:
-    t0 = time.perf_counter()
     big = split_cell(ctx.cells)
     evals = []
     for cell in ctx.cells:
@@ -243,7 +241,7 @@ def _run(ctx: Context) -> CheckResult:
     counted = {"examples": kept + (f", weighted as {ctx.spec.reference!r} weights them" if weighted else ""),
                "all rows": "all rows, ignored ones included (see the padding check)"}[chosen]
     return tally.result(
-        t0, passed=f"order, company and batch size leave per-example contributions unchanged (a mean counts {counted})",
+        passed=f"order, company and batch size leave per-example contributions unchanged (a mean counts {counted})",
         failed="the loss depends on the order, company or size of the batch", hint=HINT,
         details={"mean_counts": counted, "halves_shape": str(halves(big))},
     )

@@ -30,16 +30,13 @@ Example:
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
-from ._property import Part, Tally, mismatch_examples, single, value_and_grad
+from ._property import Part, Tally, mismatch_examples, value_and_grad
 from ..cases import CaseStack
 from ..references import get_reference
 from ..result import CheckResult
 from ..spec import LossSpec
-from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, only, planned
 from ._compare import mismatch
@@ -113,20 +110,11 @@ def class_parts(ctx: Context, stack: CaseStack, rng: np.random.Generator | None)
 
 
 def _run(ctx: Context) -> CheckResult:
-    t0 = time.perf_counter()
     tally = Tally("classes")
-    failing = None
-    for cell in ctx.cells:
-        stack = ctx.standard_cases(cell)
-        parts = class_parts(ctx, stack, ctx.rng(f"classes {cell}"))
-        tally.add(parts, len(stack))
-        if failing is None and any(p.bad.any() for p in parts):
-            failing = cell
-    if failing is not None:
-        tally.shrink(ctx, cases(ctx.spec, shapes=[failing]),
-                     lambda case: class_parts(ctx, single(ctx.spec, *case), None))
+    tally.sweep(ctx, lambda cell, stack: (class_parts(ctx, stack, ctx.rng(f"classes {cell}")), None),
+                lambda one: class_parts(ctx, one, None))
     return tally.result(
-        t0, passed="value unchanged and gradient permuted along with the classes",
+        passed="value unchanged and gradient permuted along with the classes",
         failed="the loss treats classes differently", hint=HINT,
         details={"per_class_params": per_class_params(ctx.spec)},
     )

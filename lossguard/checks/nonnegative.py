@@ -31,16 +31,13 @@ Example:
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
-from ._property import Part, Tally, single, value_and_grad
+from ._property import Part, Tally, value_and_grad
 from ..cases import CaseStack, Cell
 from ..references import get_reference
 from ..result import CheckResult, Example
 from ..spec import LossSpec
-from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import replay
@@ -100,21 +97,10 @@ def nonnegative_parts(ctx: Context, stack: CaseStack) -> tuple[list[Part], np.nd
 
 
 def _run(ctx: Context) -> CheckResult:
-    t0 = time.perf_counter()
     tally = Tally("nonnegative")
-    failing = None
-    for cell in ctx.cells:
-        stack = ctx.standard_cases(cell)
-        parts, unjudged = nonnegative_parts(ctx, stack)
-        tally.add(parts, len(stack))
-        tally.unjudged += int(unjudged.sum())
-        if failing is None and any(p.bad.any() for p in parts):
-            failing = cell
-    if failing is not None:
-        tally.shrink(ctx, cases(ctx.spec, shapes=[failing]),
-                     lambda case: nonnegative_parts(ctx, single(ctx.spec, *case))[0])
+    tally.sweep(ctx, lambda cell, stack: nonnegative_parts(ctx, stack), lambda one: nonnegative_parts(ctx, one)[0])
     return tally.result(
-        t0, passed=f"value >= 0 (within rounding) in {' and '.join(_dtypes(ctx))}",
+        passed=f"value >= 0 (within rounding) in {' and '.join(_dtypes(ctx))}",
         failed="the loss went below zero", hint=HINT,
     )
 

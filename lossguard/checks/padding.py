@@ -34,15 +34,12 @@ Example:
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
-from ._property import Part, Tally, mismatch_examples, single, value_and_grad
+from ._property import Part, Tally, mismatch_examples, value_and_grad
 from ..cases import CaseStack, halves, join, split_cell, take_rows, to_inputs
 from ..result import CheckResult, Example
 from ..spec import LossSpec
-from ..strategies import cases
 from ..tolerance import op_count, rounding_allowance
 from ._base import Check, Context, planned
 from ._compare import mismatch, replay
@@ -124,21 +121,12 @@ def padding_parts(ctx: Context, x: CaseStack, rng: np.random.Generator, with_pad
 
 
 def _run(ctx: Context) -> CheckResult:
-    t0 = time.perf_counter()
     tally = Tally("padding")
     big = split_cell(ctx.cells)
-    failing = None
-    for cell in ctx.cells:
-        x = ctx.standard_cases(cell)
-        parts = padding_parts(ctx, x, ctx.rng(f"padding {cell}"), cell == big)
-        tally.add(parts, len(x))
-        if failing is None and any(p.bad.any() for p in parts):
-            failing = cell
-    if failing is not None:
-        tally.shrink(ctx, cases(ctx.spec, shapes=[failing]), lambda case: padding_parts(
-            ctx, single(ctx.spec, *case), ctx.rng("padding search"), failing == big))
+    tally.sweep(ctx, lambda cell, x: (padding_parts(ctx, x, ctx.rng(f"padding {cell}"), cell == big), None),
+                lambda one: padding_parts(ctx, one, ctx.rng("padding search"), one.cell == big))
     return tally.result(
-        t0, passed=(f"examples labelled {ctx.spec.ignore_label} change neither value nor real gradients "
+        passed=(f"examples labelled {ctx.spec.ignore_label} change neither value nor real gradients "
                     "and get zero gradient"),
         failed=f"examples labelled {ctx.spec.ignore_label} still affect the loss", hint=HINT,
         details={"padded_shape": str(big), "real_rows": big.n // 2},
