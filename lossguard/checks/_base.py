@@ -98,7 +98,9 @@ def conclude(name: str, *, summary: str, cases: int, failed: int, allowance: str
     """
     judged = cases if judged is None else judged
     verdict = "fail" if failed else "pass" if judged else "skip"
-    return CheckResult(name=name, verdict=verdict, summary=summary if judged or failed else f"nothing to judge: {summary}",
+    if verdict == "skip":
+        summary = f"nothing to judge: {summary}"
+    return CheckResult(name=name, verdict=verdict, summary=summary,
                        cases=cases, failed=failed, allowance=allowance, worst=list(worst[:most]),
                        hint=hint if failed else "", details=dict(details or {}))
 

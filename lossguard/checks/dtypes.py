@@ -28,8 +28,6 @@ References:
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from ..cases import PATTERNS, CaseStack, Cell, concat, ladder_case_count, ladder_stack, to_inputs
@@ -39,7 +37,7 @@ from ..result import CheckResult, Example
 from ..tolerance import DTYPES, op_count, rounding_allowance
 from .._cancelling import with_target_term
 from .._range import Beyond, split_rungs
-from ._base import Check, Context, planned, within
+from ._base import Check, Context, conclude, planned, within
 from ._compare import examples_from, mismatch
 from ._extremes import fill_to, on_grid
 from ._finite_oracle import own_float64, per_case_finite, reduced_fits
@@ -139,7 +137,6 @@ def _compare(ctx: Context, stack: CaseStack, dtype: str, exp_v: np.ndarray, exp_
 
 def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = True) -> CheckResult:
     """The check on the given dtypes, with or without the float16 large batch."""
-    t0 = time.perf_counter()
     spec = ctx.spec
     total = failed = 0
     per_dtype: dict[str, int] = {}
@@ -151,7 +148,7 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
     large = large and "float16" in ctx.spec.dtypes
     beyond = ctx.beyond()
     if not low and not large:
-        return CheckResult(name="dtypes", verdict="skip", seconds=time.perf_counter() - t0,
+        return CheckResult(name="dtypes", verdict="skip",
                            summary=(f"nothing to judge: no declared dtype below float64 "
                                     f"(dtypes={','.join(ctx.spec.dtypes)}) and no reference for float64"))
     for cell in ctx.cells:
@@ -187,13 +184,11 @@ def check_dtypes(ctx: Context, dtypes: tuple[str, ...] = DTYPES, large: bool = T
     if beyond.note("within the error model"):
         summary += "; " + beyond.note("within the error model")
     only64 = failed and all(d == "float64" for d, n in per_dtype.items() if n)
-    return CheckResult(
-        name="dtypes", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
-        allowance=f"oracle: {oracle}; " + "; ".join(sorted(rules)), worst=worst[:4],
-        hint=(_HINT_FLOAT64 if only64 else _HINT_LOW),
-        details={"failed_per_dtype": per_dtype, "large_batch": LARGE_BATCH, "beyond_range": beyond.to_dict()},
-        seconds=time.perf_counter() - t0,
-    )
+    return conclude("dtypes", summary=summary, cases=total, failed=failed,
+                    allowance=f"oracle: {oracle}; " + "; ".join(sorted(rules)), worst=worst, most=4,
+                    hint=_HINT_FLOAT64 if only64 else _HINT_LOW,
+                    details={"failed_per_dtype": per_dtype, "large_batch": LARGE_BATCH,
+                             "beyond_range": beyond.to_dict()})
 
 
 _HINT_LOW = ("low precision broke where float64 did not: accumulate sums in float32 (jnp.mean does), "

@@ -30,14 +30,12 @@ gradient came out non-finite.
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from ..evaluate import NoGradient
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES
-from ._base import Check, Context, planned, within
+from ._base import Check, Context, conclude, planned, within
 from ._compare import replay
 from ._extremes import ACCUMULATOR, LEAST_CASES, STACK_SIZE, extreme_stack, fill_to, on_grid
 from ._finite_oracle import (ASSUMED_FINITE_UP_TO, Need, expected_finite, finite_oracle, own_float64,
@@ -51,9 +49,12 @@ __all__ = ["CHECK", "STACK_SIZE", "ASSUMED_FINITE_UP_TO", "ACCUMULATOR", "Need",
 DTYPES_CHECKED = DTYPES
 
 
+HINT = ("an intermediate overflowed or a log met 0: use log-sum-exp with max subtraction, "
+        "log_softmax, log σ(x) = −softplus(−x), and where-guards that keep both branches finite")
+
+
 def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> CheckResult:
     """The check on the given dtypes (the battery uses all four; tests may name one)."""
-    t0 = time.perf_counter()
     spec, ev = ctx.spec, ctx.evaluator
     total = failed = unjudged = exempt = 0
     per_dtype: dict[str, int] = {}
@@ -116,20 +117,12 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
         summary += f"; {', '.join(left_out)} not declared (dtypes=), not tried"
     if beyond.note():
         summary += "; " + beyond.note()
-    if not failed and total == unjudged:
-        summary = "nothing to judge: " + summary
-    return CheckResult(
-        name="finite", verdict="fail" if failed else "pass" if total > unjudged else "skip", summary=summary,
-        cases=total, failed=failed,
-        allowance="exact: finite wherever the true value is finite and representable; "
-                  + ("; ".join(sorted(rules)) or "every result was finite, so no oracle was consulted"),
-        worst=worst[:4],
-        hint=("an intermediate overflowed or a log met 0: use log-sum-exp with max subtraction, "
-              "log_softmax, log σ(x) = −softplus(−x), and where-guards that keep both branches finite"),
-        details={"failed_per_dtype": per_dtype, "cases_without_oracle": unjudged,
-                 "cases_where_true_value_not_representable": exempt, "beyond_range": beyond.to_dict()},
-        seconds=time.perf_counter() - t0,
-    )
+    allowance = ("exact: finite wherever the true value is finite and representable; "
+                 + ("; ".join(sorted(rules)) or "every result was finite, so no oracle was consulted"))
+    return conclude("finite", summary=summary, cases=total, failed=failed, judged=total - unjudged,
+                    allowance=allowance, worst=worst, most=4, hint=HINT,
+                    details={"failed_per_dtype": per_dtype, "cases_without_oracle": unjudged,
+                             "cases_where_true_value_not_representable": exempt, "beyond_range": beyond.to_dict()})
 
 
 def _cause(value: np.ndarray, grad: np.ndarray | None, in_value: bool) -> str:

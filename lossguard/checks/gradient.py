@@ -52,8 +52,6 @@ References:
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from .. import _fd
@@ -66,7 +64,7 @@ from ..evaluate import NoGradient
 from ..result import CheckResult
 from ..tolerance import gamma, op_count, rounding_allowance
 from .._simplex import flushed
-from ._base import Check, Context
+from ._base import Check, Context, conclude
 from ._compare import examples_from, mismatch
 from ._gradient_parts import (Probe, Tally, directional_pair, dots, example, point_values, probe_directions,
                               slope_allowance, special_cases, sum_out)
@@ -312,7 +310,6 @@ def _run(ctx: Context) -> CheckResult:
 def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     """The gradient check on given stacks (the battery passes its standard and special cases;
     benchmarks pass a few cases of a large shape)."""
-    t0 = time.perf_counter()
     ev = ctx.evaluator
     calls0 = ev.calls
     tally = Tally()
@@ -331,11 +328,9 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
     oracles = ", ".join(sorted(tally.oracles))
     notes = "; ".join(sorted(tally.notes))
     if tally.bad:
-        verdict = "fail"
         pairs = "; ".join(f"{p} on {n}" for p, n in sorted(tally.pairs.items(), key=lambda x: -x[1]))
         summary = f"gradient wrong on {tally.bad} of {tally.total} cases: {pairs}" + (f" ({notes})" if notes else "")
     else:
-        verdict = "pass"
         taylor = f"median Taylor order {order:.2f}" if np.isfinite(order) else "Taylor order n/a (linear pieces)"
         summary = (f"{oracles} agree with float64 finite differences on {tally.total} cases "
                    f"({tally.judged + tally.skipped} directions) "
@@ -347,16 +342,13 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
                  f"kinks: between the one-sided derivatives; vectors: 2·γ_n·(1 + max|z|)·(‖g*‖∞ + G); "
                  f"float32: the same in float32")
     hint = " | ".join(h for key, h in _HINTS.items() if any(key in p for p in tally.pairs))
-    return CheckResult(
-        name="gradient", verdict=verdict, summary=summary, cases=tally.total, failed=tally.bad,
-        allowance=allowance, worst=worst, hint=hint,
-        details={"oracles": sorted(tally.oracles), "failed_pairs": dict(tally.pairs),
-                 "directions_judged": tally.judged, "directions_not_judged": tally.skipped,
-                 "kinks": tally.kinks, "median_taylor_order": order,
-                 "max_error_over_allowance": tally.ratio, "notes": sorted(tally.notes),
-                 "float32_cases_compared": tally.float32_cases, "loss_evaluations": ev.calls - calls0},
-        seconds=time.perf_counter() - t0,
-    )
+    details = {"oracles": sorted(tally.oracles), "failed_pairs": dict(tally.pairs),
+               "directions_judged": tally.judged, "directions_not_judged": tally.skipped,
+               "kinks": tally.kinks, "median_taylor_order": order,
+               "max_error_over_allowance": tally.ratio, "notes": sorted(tally.notes),
+               "float32_cases_compared": tally.float32_cases, "loss_evaluations": ev.calls - calls0}
+    return conclude("gradient", summary=summary, cases=tally.total, failed=tally.bad, allowance=allowance,
+                    worst=worst, hint=hint, details=details)
 
 
 def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:

@@ -26,7 +26,7 @@ Example:
 from __future__ import annotations
 
 from ..result import CheckResult, Example
-from ._base import EAGER_DTYPE, Check, Context
+from ._base import EAGER_DTYPE, Check, Context, conclude
 from ._compare import replay
 
 __all__ = ["CHECK", "CASES"]
@@ -63,14 +63,11 @@ def _run(ctx: Context) -> CheckResult:
                 replay=replay(spec, stack.predictions[i], stack.targets[i], EAGER_DTYPE)
                 + "\n# then compare the arrays you passed with copies taken before the call"))
     what = f"predictions and targets unchanged by a plain call ({ev.adapter.name} arrays, {EAGER_DTYPE})"
-    if failed:
-        args = sorted({w.what.split()[0] for w in worst})
-        return CheckResult(
-            name=CHECK.name, verdict="fail", cases=len(picks), failed=failed, worst=worst, hint=HINT,
-            summary=f"the loss changed its {' and '.join(args)} in place on {failed} of {len(picks)} cases; "
-                    f"expected {what}", allowance="none: any changed element fails")
-    return CheckResult(name=CHECK.name, verdict="pass", cases=len(picks), summary=f"{what} on {len(picks)} cases",
-                       details={"cases": picks})
+    args = " and ".join(sorted({w.what.split()[0] for w in worst}))
+    summary = (f"the loss changed its {args} in place on {failed} of {len(picks)} cases; expected {what}" if failed
+               else f"{what} on {len(picks)} cases")
+    return conclude(CHECK.name, summary=summary, cases=len(picks), failed=failed,
+                    allowance="none: any changed element fails", worst=worst, hint=HINT, details={"cases": picks})
 
 
 CHECK = Check(

@@ -23,8 +23,6 @@ fewer cases (:func:`lossguard._budget.case_count`).
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from .._budget import case_count
@@ -33,7 +31,7 @@ from ..evaluate import NoGradient
 from ..ladders import mask_non_targets, sparse_simplex_rows
 from ..result import CheckResult, Example
 from ..tolerance import op_count, rounding_allowance
-from ._base import EAGER_DTYPE, Check, Context, only, planned
+from ._base import EAGER_DTYPE, Check, Context, conclude, only, planned
 from ._compare import replay
 from ._finite_oracle import own_float64, per_case_finite, reduced_fits
 from ._reference_batch import reference_batch
@@ -121,9 +119,12 @@ def _plain_calls(ctx: Context, stack: CaseStack, need: np.ndarray, worst: list[E
     return int(bad.sum())
 
 
+HINT = ("a −inf logit met 0 · (−inf) = nan: gather the label's log-probability instead of multiplying "
+        "by a one-hot, and where-guard terms of classes with zero target before the product")
+
+
 def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckResult:
     """The check on the given dtypes (default: float32 and float64 at quick effort, else all)."""
-    t0 = time.perf_counter()
     spec, ev = ctx.spec, ctx.evaluator
     dtypes = ctx.judged_dtypes(dtypes or ctx.effort.masking_dtypes) or ("float64",)
     total = failed = skipped = 0
@@ -179,16 +180,10 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
         summary = f"{what} on {total - skipped} judged cases ({', '.join(dtypes)}); {full}"
     if skipped:
         summary += f"; {skipped} cases not judged: the true value is infinite (target mass on a masked class)"
-    return CheckResult(
-        name="masking", verdict="fail" if failed else "pass", summary=summary, cases=total, failed=failed,
-        allowance=(f"exact: finite where the true value is (oracle: {oracle_name}); "
-                   "gradient exactly 0 at masked entries"),
-        worst=worst[:3],
-        hint=("a −inf logit met 0 · (−inf) = nan: gather the label's log-probability instead of multiplying "
-              "by a one-hot, and where-guard terms of classes with zero target before the product"),
-        details={"fully_masked_row": full_row, "cases_not_judged": skipped, "dtypes": list(dtypes)},
-        seconds=time.perf_counter() - t0,
-    )
+    allowance = f"exact: finite where the true value is (oracle: {oracle_name}); gradient exactly 0 at masked entries"
+    return conclude("masking", summary=summary, cases=total, failed=failed, allowance=allowance, worst=worst,
+                    hint=HINT, details={"fully_masked_row": full_row, "cases_not_judged": skipped,
+                                        "dtypes": list(dtypes)})
 
 
 def _run(ctx: Context) -> CheckResult:

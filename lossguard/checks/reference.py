@@ -8,15 +8,13 @@ of :mod:`lossguard.tolerance` evaluated in the dtype the loss actually computed 
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 
 from ..evaluate import NoGradient
 from .._cancelling import with_target_term
 from ..result import CheckResult
 from ..tolerance import op_count, rounding_allowance
-from ._base import Check, Context, planned
+from ._base import Check, Context, conclude, planned
 from ._compare import examples_from, mismatch, over_allowance
 from ._reference_batch import reference_batch
 from ._scales import case_scale, gradient_term_scale
@@ -24,8 +22,11 @@ from ._scales import case_scale, gradient_term_scale
 __all__ = ["CHECK"]
 
 
+HINT = ("the loss and the reference disagree: a different formula, parameter convention or "
+        "reduction, or an unstable evaluation at the extreme cases shown")
+
+
 def _run(ctx: Context) -> CheckResult:
-    t0 = time.perf_counter()
     spec, ev = ctx.spec, ctx.evaluator
     total = failed = 0
     worst = []
@@ -70,19 +71,13 @@ def _run(ctx: Context) -> CheckResult:
     if failed:
         summary = (f"{what} differ from reference {spec.reference!r} on {failed} of {total} cases; "
                    f"the worst is {over_allowance(max_ratio)}")
-        verdict = "fail"
     else:
         summary = (f"{what} equal reference {spec.reference!r} on {total} cases "
                    f"(largest error {max_ratio:.2g} of its allowance)")
-        verdict = "pass"
-    return CheckResult(
-        name="reference", verdict=verdict, summary=summary, cases=total, failed=failed,
-        allowance="; ".join(sorted(rules)), worst=worst[:3],
-        hint=("the loss and the reference disagree: a different formula, parameter convention or "
-              "reduction, or an unstable evaluation at the extreme cases shown"),
-        details={"max_abs_error": max_abs, "max_rel_error": max_rel, "max_error_over_allowance": max_ratio, "gradient_checked": grad_checked},
-        seconds=time.perf_counter() - t0,
-    )
+    return conclude("reference", summary=summary, cases=total, failed=failed, allowance="; ".join(sorted(rules)),
+                    worst=worst, hint=HINT, details={"max_abs_error": max_abs, "max_rel_error": max_rel,
+                                                     "max_error_over_allowance": max_ratio,
+                                                     "gradient_checked": grad_checked})
 
 
 def _applies(spec) -> str | None:  # type: ignore[no-untyped-def]

@@ -53,7 +53,7 @@ from ..evaluate import NoGradient
 from ..references import get_reference
 from ..result import CheckResult, Example
 from ..tolerance import gamma, op_count
-from ._base import Check, Context, never
+from ._base import Check, Context, conclude, never
 from ._compare import replay
 from ._gradient_parts import special_cases
 from ._scales import case_scale, gradient_term_scale
@@ -218,8 +218,13 @@ def _convex_reference(ctx: Context) -> bool:
     return bool(spec.reference and spec.inputs == "logits" and "convex" in get_reference(spec.reference).properties)
 
 
+#: the allowance rule of the check, in words
+ALLOWANCE = ("finite differences of the gradient: 2 × Richardson table estimate + Σ|a_l| ε_g/h_l, "
+             "ε_g = γ_n(1 + S)(‖g‖∞ + G); autodiff H v: γ_n(1 + S)(‖Hv‖∞ + 3G‖v‖∞); "
+             "curvature: ‖v‖₁ × that")
+
+
 def _run(ctx: Context) -> CheckResult:
-    t0 = time.perf_counter()
     ev = ctx.evaluator
     if not ev.has_autodiff:
         return CheckResult(name="second-order", verdict="skip",
@@ -249,19 +254,12 @@ def _run(ctx: Context) -> CheckResult:
     if found["psd"]:
         hint.append(f"the loss is not convex where reference {ctx.spec.reference!r} is: a different formula "
                     "(a squared or clipped probability, a non-log score)")
-    return CheckResult(
-        name="second-order", verdict="fail" if found["failed"] else "pass", summary=summary,
-        cases=found["cases"], failed=found["failed"],
-        allowance=("finite differences of the gradient: 2 × Richardson table estimate + Σ|a_l| ε_g/h_l, "
-                   "ε_g = γ_n(1 + S)(‖g‖∞ + G); autodiff H v: γ_n(1 + S)(‖Hv‖∞ + 3G‖v‖∞); curvature: "
-                   "‖v‖₁ × that"),
-        worst=sorted(found["worst"], key=lambda e: -e.abs_err / e.allowance if e.allowance else 0)[:3],
-        hint="; ".join(hint),
-        details={"directions_not_judged": found["unjudged"], "max_error_over_allowance": found["ratio"],
-                 "convexity_checked": found["convex"],
-                 "min_curvature": found["min_curvature"] if found["convex"] else None},
-        seconds=time.perf_counter() - t0,
-    )
+    return conclude("second-order", summary=summary, cases=found["cases"], failed=found["failed"], allowance=ALLOWANCE,
+                    worst=sorted(found["worst"], key=lambda e: -e.abs_err / e.allowance if e.allowance else 0),
+                    hint="; ".join(hint),
+                    details={"directions_not_judged": found["unjudged"], "max_error_over_allowance": found["ratio"],
+                             "convexity_checked": found["convex"],
+                             "min_curvature": found["min_curvature"] if found["convex"] else None})
 
 
 CHECK = Check(
