@@ -21,6 +21,11 @@ from pathlib import Path
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 
+def framework(entry: object) -> str:
+    """``torch`` for the corpus's PyTorch entries, else ``jax/numpy``."""
+    return "torch" if "torch" in entry.id.lower() else "jax/numpy"  # the corpus's torch ids say so
+
+
 def main() -> None:
     from _common import corpus, header, table
 
@@ -36,6 +41,7 @@ def main() -> None:
     known = set(all_checks())
 
     rows, caught, gaps, missing_checks, by_any = [], 0, 0, 0, 0
+    per: dict[tuple[str, str], list[tuple[bool, float]]] = {}  # (framework, broken|correct) → (ok, s)
     broken_time = 0.0
     for e in c.BROKEN:
         if not set(e.catches) <= known:
@@ -52,6 +58,7 @@ def main() -> None:
         is_gap = any((e.id, n) in c.KNOWN_GAPS and verdicts[n] != "fail" for n in e.catches)
         caught += ok
         gaps += is_gap
+        per.setdefault((framework(e), "broken caught"), []).append((ok, seconds))
         flagged = "-"
         if args.full:
             spec = e.spec()
@@ -77,6 +84,7 @@ def main() -> None:
         known_fa = [n for n in flagged if (e.id, n) in c.KNOWN_FALSE_ALARMS]
         ran = sum(ch.verdict == "pass" for ch in res.checks)
         clean += not flagged
+        per.setdefault((framework(e), "correct clean"), []).append((not flagged, seconds))
         false_alarms += bool(known_fa) and len(known_fa) == len(flagged)
         status = "clean" if not flagged else ("known false alarm" if len(known_fa) == len(flagged) else "FLAGGED")
         rows.append([e.id, ran, ",".join(flagged) or "-", status, seconds])
@@ -93,6 +101,10 @@ def main() -> None:
         ["correct left clean", clean, len(c.CORRECT), correct_time, correct_time / len(c.CORRECT)],
         ["  correct flagged only by a known false alarm", false_alarms, len(c.CORRECT), "", ""],
     ])
+    print("## by framework")
+    table(["framework", "what", "count", "of", "seconds per entry"],
+          [[fw, what, sum(ok for ok, _ in v), len(v), sum(t for _, t in v) / len(v)]
+           for (fw, what), v in sorted(per.items())])
     met = caught == n_b and missing_checks == 0 and clean + false_alarms == len(c.CORRECT) and false_alarms == 0
     print(f"target (every broken loss caught, no correct loss flagged): {'met' if met else 'not met'}")
 

@@ -1,4 +1,5 @@
-"""Scale-out: a suite of 6 losses under pytest with ``-n 1`` and ``-n 2`` (pytest-xdist).
+"""Scale-out: a suite of 6 losses under pytest with ``-n 1`` and ``-n 2`` (pytest-xdist), written
+in JAX and (``--suite torch``, on by default where torch is installed) in PyTorch.
 
 The headline is the plugin style under xdist's default distribution. Each style is a generated
 test module in a temporary directory:
@@ -67,6 +68,18 @@ LOSSES = (
     ("bce_weighted", "corpus:correct-bce_log_sigmoid_weighted"),
 )
 
+#: the same suite written in PyTorch (``--suite torch``): the speed losses' torch twins and four
+#: correct torch losses of the corpus (a function, a module class, a custom Function, focal)
+TORCH_LOSSES = (
+    ("small", "speed_losses_torch:small_loss"),
+    ("large", "speed_losses_torch:large_loss"),
+    ("functional", "corpus:correct-torch_ce_functional"),
+    ("module_class", "corpus:correct-TorchSmoothedModule"),
+    ("custom_function", "corpus:correct-torch_ce_function"),
+    ("focal", "corpus:correct-torch_focal_functional"),
+)
+SUITES = {"jax": LOSSES, "torch": TORCH_LOSSES}
+
 #: style → (module body kind, extra pytest arguments)
 STYLES = {
     "plugin": ("plugin", []),
@@ -89,23 +102,24 @@ _EFFORT = {effort!r}
 
 def _loss(where):
     source, name = where.split(":")
-    if source == "speed_losses":
-        return getattr(speed_losses, name), dict(speed_losses.DECLARATIONS[name])
+    if source.startswith("speed_losses"):
+        module = __import__(source)
+        return getattr(module, name), dict(module.DECLARATIONS[name])
     entry = corpus.by_id(name)
     return entry.fn, dict(entry.declaration)
 '''
 
 
-def _module(kind: str, effort: str) -> str:
+def _module(kind: str, effort: str, losses: tuple[tuple[str, str], ...] = LOSSES) -> str:
     from _common import BENCH, ROOT
 
     text = textwrap.dedent(_PRELUDE).format(bench=str(BENCH), tests=str(ROOT / "tests"), effort=effort)
     if kind == "plugin":
         text += "from lossguard.pytest_plugin import battery\n\n"
-        for name, where in LOSSES:
+        for name, where in losses:
             text += f"_fn, _decl = _loss({where!r})\ntest_{name} = battery(_fn, **_decl)\n"
     else:
-        for name, where in LOSSES:
+        for name, where in losses:
             text += (f"\ndef test_{name}():\n"
                      f"    fn, decl = _loss({where!r})\n"
                      f"    assert lossguard.run(lossguard.declare(fn, **decl), effort=_EFFORT).ok\n")
@@ -159,6 +173,14 @@ def measure(path: Path, extra: list[str], effort: str, repeats: int, env: dict[s
     return out
 
 
+def _torch_installed() -> bool:
+    try:
+        import torch  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
 def main() -> None:
     from _common import header, table
 
@@ -169,6 +191,8 @@ def main() -> None:
                         help=f"comma-separated, from: {', '.join(STYLES)}")
     parser.add_argument("--env", action="append", default=[], metavar="NAME=VALUE",
                         help="also time the plugin styles with these environment variables set")
+    parser.add_argument("--suite", default="jax,torch" if _torch_installed() else "jax",
+                        help="comma-separated: jax, torch (the same suite written in PyTorch; needs torch)")
     parser.add_argument("--pinned", action="store_true",
                         help="also time the plugin style's -n 1 run pinned to one core (taskset -c 0)")
     args = parser.parse_args()
@@ -180,18 +204,21 @@ def main() -> None:
            f"{args.repeats} alternating run(s) each)")
     base_env = dict(os.environ)
     extra_env = dict(item.split("=", 1) for item in args.env)
-    runs = [(s, False) for s in styles]
+    suites = [s.strip() for s in args.suite.split(",") if s.strip()]
+    if any(s not in SUITES for s in suites):
+        raise SystemExit(f"--suite: expected some of {list(SUITES)}")
+    runs = [(s, False, suite) for suite in suites for s in styles]
     if extra_env:
-        runs += [(s, True) for s in styles if STYLES[s][0] == "plugin" and s != "startup"]
+        runs += [(s, True, "jax") for s in styles if STYLES[s][0] == "plugin" and s != "startup"]
     rows, figures = [], {}
     with tempfile.TemporaryDirectory(prefix="lossguard-scale-") as tmp:
-        for style, with_env in runs:
+        for style, with_env, suite in runs:
             kind, extra = STYLES[style]
-            path = Path(tmp) / f"test_suite_{kind}.py"
+            path = Path(tmp) / f"test_suite_{suite}_{kind}.py"
             if not path.exists():
-                path.write_text(_module(kind, args.effort))
+                path.write_text(_module(kind, args.effort, SUITES[suite]))
             env = {**base_env, **(extra_env if with_env else {})}
-            label = f"{style} +env" if with_env else style
+            label = (f"{style} +env" if with_env else style) + ("" if suite == "jax" else f" ({suite})")
             f = measure(path, extra, args.effort, args.repeats, env, warm_up=with_env, ns=(0, 1, 2))
             figures[label] = f
             met = "-" if style == "startup" else "yes" if f["speedup"] >= TARGET else "no"
@@ -209,7 +236,13 @@ def main() -> None:
         print(f"ceiling from CPU: -n 1 used {f['c1']:.1f} CPU s in {f['w1']:.1f} s ({f['c1'] / f['w1']:.2f} cores); "
               f"on {cores} cores -n 2 cannot take less than {f['c1'] / cores:.1f} s without doing less work: "
               f"at most {f['w1'] * cores / f['c1']:.2f}×")
-    timed = [k for k in figures if k != "startup"]
+    for style in ("plugin", "plugin-loadgroup"):
+        if f"{style} (torch)" in figures:
+            t = figures[f"{style} (torch)"]
+            jax_part = (f"; the JAX suite {figures[style]['speedup']:.2f}×" if style in figures else "")
+            print(f"torch suite ({style}): -n 1 {t['w1']:.1f} s, -n 2 {t['w2']:.1f} s, speed-up {t['speedup']:.2f}×"
+                  + jax_part)
+    timed = [k for k in figures if k != "startup" and "(torch)" not in k]
     if args.pinned and timed:
         first = "plugin" if "plugin" in timed else timed[0]
         kind, extra = STYLES[first]

@@ -14,6 +14,9 @@ value-and-gradient of the loss (jit-compiled, at the battery's largest default s
 - efforts: the cold command at ``--effort quick``, ``default`` and ``thorough``;
 - profile: per check, wall time, XLA compilations and loss evaluations (default effort, warm).
 
+- torch: the same losses written in PyTorch (``speed_losses_torch.py``), cold command over a
+  process that imports torch and takes one value-and-gradient, and over the JAX battery.
+
 Targets: cold default battery ≤ 5× the floor, warm ≤ 2× the floor.
 
     python benchmarks/speed.py [--repeats 3]
@@ -26,6 +29,7 @@ import json
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
@@ -34,11 +38,11 @@ WARM_UP = {"small_loss": "large_loss", "large_loss": "small_loss"}
 SHAPE = (16, 10)  # the largest cell of the default shape menu for a categorical loss
 
 
-def _cli_args(name: str, effort: str) -> list[str]:
+def _cli_args(name: str, effort: str, module: str = "speed_losses") -> list[str]:
     from speed_losses import DECLARATIONS
 
     d = DECLARATIONS[name]
-    args = [sys.executable, "-m", "lossguard", "check", f"benchmarks/speed_losses.py:{name}",
+    args = [sys.executable, "-m", "lossguard", "check", f"benchmarks/{module}.py:{name}",
             "--kind", d["kind"], "--reference", d["reference"], "--effort", effort]
     for k, v in d.get("params", {}).items():
         args += ["--param", f"{k}={json.dumps(v)}"]
@@ -72,6 +76,18 @@ def _one_value_and_grad(name: str) -> float:
 def child_floor_cold(name: str) -> None:
     """Import JAX, take one jitted value-and-gradient, exit (the cold floor's whole process)."""
     _one_value_and_grad(name)
+
+
+def child_floor_cold_torch(name: str) -> None:
+    """Import torch, take one value-and-gradient of the torch twin, exit."""
+    import numpy as np
+    import speed_losses_torch
+    import torch
+
+    rng = np.random.default_rng(0)
+    z = torch.tensor(rng.standard_normal(SHAPE), dtype=torch.float32, requires_grad=True)
+    y = torch.tensor(rng.integers(0, SHAPE[1], size=SHAPE[0]))
+    torch.autograd.grad(getattr(speed_losses_torch, name)(z, y), z)
 
 
 def _warm_up(other: str) -> None:
@@ -145,6 +161,9 @@ def main() -> None:
     print(f"## effort profiles, cold command (median of {args.repeats}; seconds, and ratio to the cold floor)")
     table(["loss", "quick s", "default s", "thorough s", "quick ×", "default ×", "thorough ×"], effort_rows)
 
+    if _has_torch():
+        _torch_rows(args.repeats, wall, {r[0]: r[3] for r in rows if r[1] == "cold"})
+
     import lossguard
     import speed_losses
 
@@ -159,10 +178,32 @@ def main() -> None:
                for c in prof.checks])
 
 
+def _has_torch() -> bool:
+    try:
+        import torch  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def _torch_rows(repeats: int, wall: Any, jax_cold: dict[str, float]) -> None:
+    """The same table for the torch twins (benchmarks/speed_losses_torch.py), beside JAX's."""
+    from _common import median_time, table
+
+    rows = []
+    for name in LOSSES:
+        floor, _ = median_time(lambda: wall(_child("floor-cold-torch", name)), repeats)
+        battery, _ = median_time(lambda: wall(_cli_args(name, "default", "speed_losses_torch")), repeats)
+        rows.append([name, floor, battery, battery / floor, jax_cold[name], battery / jax_cold[name]])
+    print(f"## torch twins, cold command, default effort (median of {repeats}; seconds)")
+    table(["loss", "torch floor s", "torch battery s", "ratio to torch floor", "jax battery s",
+           "torch ÷ jax"], rows)
+
+
 if __name__ == "__main__":
     if len(sys.argv) >= 4 and sys.argv[1] == "--child":
         mode, loss_name = sys.argv[2], sys.argv[3]
-        {"floor-cold": child_floor_cold, "floor-warm": child_floor_warm,
+        {"floor-cold": child_floor_cold, "floor-warm": child_floor_warm, "floor-cold-torch": child_floor_cold_torch,
          "battery-warm": child_battery_warm}[mode](loss_name)
     else:
         main()

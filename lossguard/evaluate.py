@@ -1,8 +1,10 @@
 """Evaluation: one object per declared loss that every check asks for values and gradients.
 
 It probes the loss once (without compiling) to pick an adapter — vmapped JAX, JAX one case at a
-time, or plain numpy — and to read the reduction from the output's shape. It keeps the compiled
-functions for the whole battery, so checks share compilations, and counts loss evaluations.
+time, torch, or plain numpy — and to read the reduction from the output's shape. It keeps the
+compiled functions for the whole battery, so checks share compilations, and counts loss
+evaluations. This is the one module outside ``adapters/`` that knows the concrete adapters;
+checks read :attr:`Evaluator.capabilities` instead.
 """
 
 from __future__ import annotations
@@ -16,14 +18,15 @@ from ._deadline import Stopped
 from ._guard import Guard
 from ._outputs import check_grad
 from .adapters import jax_loss
-from .adapters._base import Adapter, first_line
+from .adapters._base import Adapter, Capabilities, first_line
 from .adapters.numpy_loss import NumpyAdapter
 from .cases import CaseStack, Cell, random_stack, shape_menu
-from .errors import LossCallError
+from ._suggest import bad_value
+from .errors import LossCallError, SpecError
 from .spec import LossSpec
 from ._shapes import survey
 from ._precision import EVIDENCE, describe, grid_of, judged_precision, lower, why_not_traced
-from .tolerance import DTYPES
+from .tolerance import DTYPES, unit_roundoff
 
 __all__ = ["Evaluator", "NoGradient"]
 
@@ -45,6 +48,7 @@ class Evaluator:
     def __init__(self, spec: LossSpec, guard: Guard | None = None) -> None:
         #: every call of the loss and grad goes through the guard (time limit, output check)
         self.guard = guard or Guard()
+        self._declared_loss = spec.loss  # as declared: a torch module class is built from it
         self.spec = self.guard.guarded_spec(spec)
         self.adapter: Adapter
         self.output = "scalar"
@@ -67,26 +71,41 @@ class Evaluator:
     def _prepare(self) -> None:
         spec = self.spec
         stack = self._probe_stack()
-        how = jax_loss.probe(spec.loss, spec.params, stack.predictions, stack.targets)
+        how = None if self._torch_module() else jax_loss.probe(spec.loss, spec.params, stack.predictions,
+                                                                stack.targets)
         if how is not None:
             mode, out_shape = how
             self.adapter = jax_loss.JaxAdapter(spec.loss, spec.params, vectorised=(mode == "vmap"))
-            if spec.grad is not None:
-                self._user_grad = NumpyAdapter(spec.loss, spec.params, spec.grad)
         elif (torch_shape := self._probe_torch(stack)) is not None:
             from .adapters.torch_loss import TorchAdapter
 
-            self.adapter, out_shape = TorchAdapter(spec.loss, spec.params), torch_shape
-            if spec.grad is not None:
-                self._user_grad = NumpyAdapter(spec.loss, spec.params, spec.grad)
+            self.adapter, out_shape = TorchAdapter(self._declared_loss, spec.params, wrap=self._guarded, train=spec.train,
+                                                   autocast=spec.autocast), torch_shape
         else:
             self.adapter = NumpyAdapter(spec.loss, spec.params, spec.grad)
             out_shape = self._probe_plain(stack)
             self.untraced = why_not_traced(spec.loss, spec.params, stack.predictions[0], stack.targets[0])
+        self._torch_only(spec)
+        if spec.grad is not None and self.adapter.capabilities.autodiff:
+            self._user_grad = NumpyAdapter(spec.loss, spec.params, spec.grad)
         self._read_output(out_shape, stack)
         check_grad(self.spec, stack)
-        if isinstance(self.adapter, jax_loss.JaxAdapter):
-            self.adapter.out_shape = self._out_shape
+        self.adapter.out_shape = self._out_shape
+
+    def _torch_only(self, spec: LossSpec) -> None:
+        """``train`` and ``autocast`` are torch declarations: refuse them for other losses."""
+        for name, value, default in (("train", spec.train, False), ("autocast", spec.autocast, None)):
+            if value != default and self.adapter.name != "torch":
+                raise SpecError(bad_value(name, value, f"a torch loss (this one runs on {self.adapter.name})",
+                                          f"try dropping {name}"))
+
+    def _torch_module(self) -> bool:
+        """An ``nn.Module`` (instance or class) goes straight to the torch adapter."""
+        if "torch" not in sys.modules:
+            return False
+        from .adapters.torch_loss import torch_module
+
+        return torch_module(self._declared_loss)
 
     def _out_shape(self, pred_shape: tuple[int, ...]) -> tuple[int, ...]:
         """The loss's output shape per case for predictions of ``pred_shape``."""
@@ -100,7 +119,13 @@ class Evaluator:
             return None
         from .adapters import torch_loss
 
-        return torch_loss.probe(self.spec.loss, self.spec.params, stack.predictions[0], stack.targets[0])
+        return torch_loss.probe(self._declared_loss, self.spec.params, stack.predictions[0], stack.targets[0],
+                                wrap=self._guarded)
+
+    def _guarded(self, fn: Any) -> Any:
+        """``fn`` (a torch loss as the adapter calls it: a built module, or the function) behind the
+        guard; the declared loss itself is not wrapped, so a module class can still be built."""
+        return self.guard.wrap(fn, "loss", self.spec.name)
 
     def _probe_plain(self, stack: CaseStack) -> tuple[int, ...]:
         z, y = stack.predictions[0], stack.targets[0]
@@ -132,12 +157,17 @@ class Evaluator:
 
     # -- evaluation ----------------------------------------------------------------------------
     @property
+    def capabilities(self) -> Capabilities:
+        """What the adapter can compute for this loss (forward mode, second order, …)."""
+        return self.adapter.capabilities
+
+    @property
     def has_gradient(self) -> bool:
-        return self.adapter.has_autodiff or self.spec.grad is not None
+        return self.capabilities.autodiff or self.spec.grad is not None
 
     @property
     def has_autodiff(self) -> bool:
-        return self.adapter.has_autodiff
+        return self.capabilities.autodiff
 
     @property
     def calls(self) -> int:
@@ -178,7 +208,8 @@ class Evaluator:
         return self._user_grad.value_and_grad(stack.predictions, stack.targets, dtype)[1]
 
     def jvp(self, stack: CaseStack, directions: np.ndarray, dtype: str = "float64") -> tuple[np.ndarray, np.ndarray]:
-        """(values, directional derivatives along ``directions``) by forward mode where possible."""
+        """(values, directional derivatives along ``directions``): by a forward-mode pass where
+        ``capabilities.forward_mode``, else from the gradient (then no independent check)."""
         if not self.has_gradient:
             raise NoGradient(self.spec.name)
         try:
@@ -191,18 +222,26 @@ class Evaluator:
         cotangent: np.ndarray | None = None,
     ) -> tuple[np.ndarray, np.ndarray]:
         """(gradient, Hessian-vector product along ``directions``) of ⟨cotangent, output⟩ per
-        case, by autodiff (reverse over reverse); :class:`NoGradient` without autodiff."""
-        if not self.has_autodiff or not hasattr(self.adapter, "hvp"):
-            raise NoGradient(f"{self.spec.name}: Hessian-vector products need a JAX-traceable loss")
+        case, by autodiff (reverse over reverse); :class:`NoGradient` where the adapter has none."""
+        if not self.capabilities.second_order:
+            raise NoGradient(f"{self.spec.name}: Hessian-vector products need autodiff (a JAX-traceable or "
+                             "torch loss)")
         if cotangent is None:
             cotangent = np.ones((len(stack),) + self.cotangent_shape(stack))
-        return self.adapter.hvp(stack.predictions, stack.targets, directions, dtype, cotangent)
+        try:
+            return self.adapter.hvp(stack.predictions, stack.targets, directions, dtype, cotangent)
+        except NotImplementedError as exc:
+            raise NoGradient(str(exc)) from None
 
     def computed_dtype(self, dtype: str) -> str:
         """The precision the loss actually computed in for ``dtype`` inputs (the lower of the
         two): a loss that casts to float32 is judged by float32's rounding."""
-        out = getattr(self.adapter, "out_dtypes", {}).get(dtype, dtype)
-        return judged_precision(dtype, lower(dtype, out, self.rounding_grid()))
+        out = self.adapter.out_dtypes.get(dtype, dtype)
+        judged = judged_precision(dtype, lower(dtype, out, self.rounding_grid()))
+        if self.spec.autocast is not None and dtype == "float32":
+            # declared: the loss runs under CPU autocast, so float32 inputs get that dtype's rounding
+            return max((judged, self.spec.autocast), key=unit_roundoff)
+        return judged
 
     def rounding_grid(self) -> str | None:
         """The coarser grid every value and gradient of a float64 call lies on (``None``: float64
@@ -230,9 +269,7 @@ class Evaluator:
 
     def prepare(self, plan: list[tuple[str, str, Cell]]) -> None:
         """Start compiling what a battery will ask for — (operation, dtype, shape) with operation
-        ``"vg"`` or ``"jvp"`` — in the background (JAX adapter only; a no-op otherwise)."""
-        if not isinstance(self.adapter, jax_loss.JaxAdapter):
-            return
+        ``"vg"`` or ``"jvp"`` — in the background (a no-op for adapters that compile nothing)."""
         kind = self.spec.kind
         jobs = []
         for op, dtype, cell in plan:
@@ -243,17 +280,15 @@ class Evaluator:
 
     def settle(self) -> None:
         """Cancel background compilations that no check has asked for (the battery is over)."""
-        if isinstance(self.adapter, jax_loss.JaxAdapter):
-            self.adapter.cancel_pending()
+        self.adapter.cancel_pending()
 
     def describe(self) -> dict[str, Any]:
         self.rounding_grid()  # before reading out_dtypes: the probe adds to them
-        asked = [d for d in list(getattr(self.adapter, "out_dtypes", {})) if d in DTYPES]
-        computed = {d: lower(d, self.adapter.out_dtypes[d], self.rounding_grid())  # type: ignore[attr-defined]
-                    for d in asked}
+        asked = [d for d in list(self.adapter.out_dtypes) if d in DTYPES]
+        computed = {d: lower(d, self.adapter.out_dtypes[d], self.rounding_grid()) for d in asked}
         computed["float64"] = lower("float64", computed.get("float64"), self.rounding_grid())
         return {"adapter": self.adapter.name, "output": self.output, "reduction": self.reduction,
                 "computed_in": computed, "untraced": self.untraced,
-                "notes": describe(computed, f"not traced by JAX ({self.untraced}): run as plain calls"
-                                  if self.untraced else "")
+                "notes": list(self.adapter.notes)
+                + describe(computed, f"not traced by JAX ({self.untraced}): run as plain calls" if self.untraced else "")
                 + [f"{why}: that shape is left out" for why in self.left_out.values()]}

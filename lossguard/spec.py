@@ -24,11 +24,13 @@ from ._suggest import bad_value, did_you_mean
 from .errors import SpecError
 from .tolerance import DTYPES
 
-__all__ = ["KINDS", "INPUTS", "REDUCTIONS", "LossSpec", "declare"]
+__all__ = ["KINDS", "INPUTS", "REDUCTIONS", "AUTOCAST_DTYPES", "LossSpec", "declare"]
 
 KINDS = ("binary", "categorical", "distribution")
 INPUTS = ("logits", "probabilities")
 REDUCTIONS = ("mean", "sum")
+#: dtypes a torch loss may declare it runs under CPU autocast to
+AUTOCAST_DTYPES = ("bfloat16", "float16")
 
 
 @dataclass(frozen=True)
@@ -53,6 +55,8 @@ class LossSpec:
     #: the operating range: dtypes the loss is used in, and the largest |logit| it must handle
     dtypes: tuple[str, ...] = DTYPES
     max_logit: float = DEFAULT_MAX_LOGIT
+    train: bool = False
+    autocast: str | None = None
 
     @property
     def softmax_type(self) -> bool:
@@ -79,6 +83,8 @@ class LossSpec:
             "expect": list(self.expect),
             "dtypes": list(self.dtypes),
             "max_logit": describe_max_logit(self.max_logit),
+            "train": self.train,
+            "autocast": self.autocast,
         }
 
 
@@ -104,8 +110,10 @@ def _check_signature(fn: Callable[..., Any], what: str, params: Mapping[str, Any
         sig = inspect.signature(fn)
     except (TypeError, ValueError):
         return  # builtins and some C callables have no signature; the probe call decides
+    # a class (a torch nn.Module class) is built with the params and then called with two tensors
+    positional = () if inspect.isclass(fn) else (object(), object())
     try:
-        sig.bind(object(), object(), **params)
+        sig.bind(*positional, **params)
     except TypeError as exc:
         raise SpecError(
             bad_value(
@@ -161,11 +169,14 @@ def declare(
     name: str | None = None,
     dtypes: str | tuple[str, ...] | list[str] = DTYPES,
     max_logit: float | str = DEFAULT_MAX_LOGIT,
+    train: bool = False,
+    autocast: str | None = None,
 ) -> LossSpec:
     """Declare what a loss is, so that a battery of checks can be run against it.
 
     Args:
-        loss: ``loss(predictions, targets, **params)`` returning a scalar or per-example values.
+        loss: ``loss(predictions, targets, **params)`` returning a scalar or per-example values;
+            or a torch ``nn.Module`` class, built as ``loss(**params)`` and then called.
         kind: ``"binary"``, ``"categorical"`` or ``"distribution"`` (shapes in the module doc).
         inputs: ``"logits"`` (default) or ``"probabilities"``.
         params: keyword parameters passed to the loss (and to the reference, if any).
@@ -182,6 +193,9 @@ def declare(
         max_logit: the largest |logit| the loss must handle (default 1e3, common practice; see
             :mod:`lossguard._range`), or ``"full"`` for the whole format. Beyond it the checks
             report what they see as information, not as failures.
+        train: torch modules only: judge the module in train mode (default: eval mode).
+        autocast: torch losses only: the loss runs under CPU autocast to this dtype
+            (``"bfloat16"`` or ``"float16"``); float32 inputs are then judged at its rounding.
 
     Returns:
         A frozen :class:`LossSpec`.
@@ -216,6 +230,11 @@ def declare(
     if grad is not None and not callable(grad):
         raise SpecError(bad_value("grad", grad, "a callable grad(predictions, targets, **params)",
                                   "pass the function itself"))
+    if not isinstance(train, bool):
+        raise SpecError(bad_value("train", train, "True or False", "try train=True for a module in train mode"))
+    if autocast is not None and autocast not in AUTOCAST_DTYPES:
+        raise SpecError(bad_value("autocast", autocast, "bfloat16 or float16",
+                                  did_you_mean(str(autocast), AUTOCAST_DTYPES)))
     _check_signature(loss, "loss", params, name or "")
     if grad is not None:
         _check_signature(grad, "grad", params)
@@ -245,4 +264,6 @@ def declare(
         name=name or _callable_name(loss),
         dtypes=dtypes,
         max_logit=max_logit,
+        train=train,
+        autocast=autocast,
     )

@@ -53,7 +53,7 @@ def test_every_readme_command_has_an_expectation() -> None:
     assert len(checks) == len(CHECKS)
     assert sorted(_about(c) for c in checks) == sorted(CHECKS.values())
     assert len(_commands("lossguard")) == len(checks) + 1  # and one compare
-    assert len(_commands("pytest")) == 2
+    assert len(_commands("pytest")) == 3
 
 
 @pytest.mark.parametrize("command", [c for c in _commands("lossguard") if c.startswith("check ")])
@@ -89,7 +89,7 @@ def test_compare_recipe(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys:
 def test_pytest_recipe_under_xdist(pytester: pytest.Pytester) -> None:
     commands = _commands("pytest")
     assert any("-n auto" in c for c in commands)
-    (selective,) = [c for c in commands if "-k" in c]
+    (selective,) = [c for c in commands if "-k" in c and "sorting_line" in c]
     args = [str(ROOT / a) if a.endswith(".py") else a for a in shlex.split(selective)]
     # -n 2 stands in for -n auto: the same distribution, without claiming every core
     quiet = ["-p", "no:cacheprovider", "-p", "no:benchmark", "-p", "no:hypothesispytest"]
@@ -98,3 +98,16 @@ def test_pytest_recipe_under_xdist(pytester: pytest.Pytester) -> None:
     assert result.ret == 0, result.stdout.str()
     # four declarations name a reference; the grade loss has none, so its item is a skip
     assert outcomes.get("passed") == 5 and outcomes.get("skipped") == 1, outcomes
+
+
+def test_torch_recipe(pytester: pytest.Pytester) -> None:
+    pytest.importorskip("torch")
+    (command,) = [c for c in _commands("pytest") if "torch" in c]
+    args = [str(ROOT / a) if a.endswith(".py") else a for a in shlex.split(command)]
+    quiet = ["-p", "no:cacheprovider", "-p", "no:benchmark", "-p", "no:hypothesispytest"]
+    result = pytester.runpytest_subprocess(*args, *quiet, f"--rootdir={ROOT}", "-q")
+    outcomes = result.parseoutcomes()
+    assert result.ret == 0, result.stdout.str()
+    # ripeness: the default battery, 14 checks (second-order and proper are opt-in skips); blemish
+    # three checks, stems two, and the pinned slip
+    assert outcomes.get("passed") == 19 and outcomes.get("skipped") == 2, outcomes

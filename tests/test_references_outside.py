@@ -81,6 +81,27 @@ def test_bce_probabilities_vs_sklearn_torch_scipy(rng: np.random.Generator) -> N
     assert_close(BCE.per_example(p, soft, inputs="probabilities"), t.numpy(), 1e-13)
 
 
+def test_bce_pos_weight_on_probabilities_vs_scipy_sklearn_torch(rng: np.random.Generator) -> None:
+    w = 2.5
+    p = rng.uniform(0.02, 0.98, 40)
+    hard = rng.integers(0, 2, 40).astype(float)
+    got = BCE.per_example(p, hard, inputs="probabilities", pos_weight=w)
+    # scipy.special.xlogy / xlog1py: −[w y log p + (1 − y) log(1 − p)], w on the positive term
+    assert_close(got, -(w * sp.xlogy(hard, p) + sp.xlog1py(1 - hard, -p)), 1e-14)
+    # sklearn.metrics.log_loss, unnormalised, with sample_weight w on positive examples: for hard
+    # labels that is the positive term weighted by w
+    want = log_loss(hard, p, sample_weight=np.where(hard == 1, w, 1.0), normalize=False, labels=[0, 1])
+    assert_close(np.sum(got), want, 1e-12)
+    torch = pytest.importorskip("torch")
+    soft = rng.random(40)
+    # torch.nn.functional.binary_cross_entropy_with_logits(pos_weight=w) at z = log(p / (1 − p)):
+    # σ(z) = p, so it is the probabilities form with w on the positive term (soft targets)
+    zt = torch.tensor(np.log(p) - np.log1p(-p))
+    t = torch.nn.functional.binary_cross_entropy_with_logits(
+        zt, torch.tensor(soft), pos_weight=torch.tensor(w, dtype=torch.float64), reduction="none")
+    assert_close(BCE.per_example(p, soft, inputs="probabilities", pos_weight=w), t.numpy(), 1e-12)
+
+
 def test_bce_probabilities_at_zero_and_one_give_the_true_infinity() -> None:
     p, y = np.array([0.0, 1.0, 0.0, 1.0]), np.array([1.0, 0.0, 0.0, 1.0])
     got = BCE.per_example(p, y, inputs="probabilities")
@@ -125,6 +146,25 @@ def test_categorical_ce_distribution_vs_optax_scipy_torch(rng: np.random.Generat
     # scipy.special.log_softmax, weighted by hand: −Σ w_c y_c log softmax(z)_c
     assert_close(CE.per_example(z, rows, weight=list(w)),
                  -np.sum(w * rows * sp.log_softmax(z, axis=-1), axis=-1), 1e-13)
+
+
+def test_categorical_ce_class_weighted_rows_vs_scipy_sklearn_torch(rng: np.random.Generator) -> None:
+    z, labels, _ = parcels(rng)
+    w = np.array([0.5, 2.0, 1.0, 3.0])
+    # the registry's weighted rows: each example's loss times its label's weight (the weighted mean
+    # divides their sum by Σ w_y)
+    got = CE.example_weights(labels, weight=list(w)) * CE.per_example(z, labels, weight=list(w))
+    # scipy.special.log_softmax: example i weighted by its label's weight, −w_y log softmax(z)_y
+    assert_close(got, -w[labels] * sp.log_softmax(z, axis=-1)[np.arange(N), labels], 1e-13)
+    # sklearn.metrics.log_loss, unnormalised, with sample_weight = w_y: Σ_i w_y ℓ_i
+    want = log_loss(labels, sp.softmax(z, axis=-1), sample_weight=w[labels], normalize=False,
+                    labels=list(range(C)))
+    assert_close(np.sum(got), want, 1e-12)
+    torch = pytest.importorskip("torch")
+    # torch.nn.functional.cross_entropy(weight=w, reduction="none") gives w_y ℓ_i per row
+    t = torch.nn.functional.cross_entropy(torch.tensor(z), torch.tensor(labels), weight=torch.tensor(w),
+                                          reduction="none")
+    assert_close(got, t.numpy(), 1e-13)
 
 
 def test_categorical_ce_probabilities_vs_sklearn_scipy(rng: np.random.Generator) -> None:

@@ -179,6 +179,12 @@ def test_kl_sum_vs_torch_and_probabilities_input() -> None:
     (gt,) = torch.autograd.grad(out, zt)
     assert_close(value, out.detach().numpy(), 1e-12)
     assert_close(grad, gt.numpy(), 1e-12)
+
+
+def test_ce_sum_on_probabilities_vs_scipy() -> None:
+    # scipy only: kept out of the torch test above so that it runs without torch too
+    rng = np.random.default_rng(13)
+    z = rng.normal(0, 2, (N, C))
     p = sp.softmax(z, axis=-1)
     labels = rng.integers(0, C, N)
     v2, g2 = evaluate_reference("categorical_ce", p, labels, inputs="probabilities", reduction="sum")

@@ -23,13 +23,9 @@ import numpy as np
 
 from .._budget import MAX_CALL_SIZE, call_size
 from ..tolerance import dtype_of
-from ._base import call_failed
+from ._base import Capabilities, Planned, call_failed, per_case
 
 __all__ = ["JaxAdapter", "Planned"]
-
-#: One compiled function a battery will need: (operation, dtype, predictions shape of one case,
-#: targets shape of one case, targets are floats). See :meth:`JaxAdapter.prepare`.
-Planned = tuple[str, str, tuple[int, ...], tuple[int, ...], bool]
 #: Background threads compiling planned functions (XLA compiles without holding the GIL).
 COMPILE_THREADS = 2
 
@@ -57,10 +53,10 @@ def _pad(a: np.ndarray, size: int) -> np.ndarray:
 class JaxAdapter:
     """Evaluate a JAX-traceable loss; ``vectorised=False`` loops over cases (still jitted)."""
 
-    has_autodiff = True
-
     def __init__(self, loss: Callable[..., Any], params: Mapping[str, Any], vectorised: bool = True) -> None:
         self.name = "jax" if vectorised else "jax (one case at a time)"
+        self.capabilities = Capabilities(autodiff=True, forward_mode=True, second_order=True, batched=vectorised)
+        self.notes: list[str] = []
         self._loss = loss
         self._params = dict(params)
         self.vectorised = vectorised
@@ -259,18 +255,16 @@ class JaxAdapter:
     def _eager_values(self, z: np.ndarray, y: np.ndarray, dtype: str) -> np.ndarray:
         """One plain call per case, no jit: what a training loop calling the loss sees."""
         dt = dtype_of(dtype)
-        outs = []
         self.calls += z.shape[0]
-        try:
-            with jax.enable_x64(dtype == "float64"):
-                int_dt = np.int64 if dtype == "float64" else np.int32
-                for i in range(z.shape[0]):  # inputs converted on the host (no conversion compiles)
-                    yy = jax.device_put(np.asarray(y[i], dtype=dt if self._targets_float(y) else int_dt))
-                    zz = jax.device_put(np.asarray(z[i], dtype=dt))
-                    outs.append(np.asarray(self._f(zz, yy), dtype=np.float64))
-        except Exception as exc:
-            raise call_failed(exc, "values", z.shape[1:], dtype) from None
-        return np.stack(outs)
+        int_dt = np.int64 if dtype == "float64" else np.int32
+        tdt = dt if self._targets_float(y) else int_dt
+
+        def one(i: int) -> np.ndarray:  # inputs converted on the host (no conversion compiles)
+            yy, zz = jax.device_put(np.asarray(y[i], dtype=tdt)), jax.device_put(np.asarray(z[i], dtype=dt))
+            return np.asarray(self._f(zz, yy), dtype=np.float64)
+
+        with jax.enable_x64(dtype == "float64"):
+            return np.stack(per_case(one, z.shape[0], "values", z.shape[1:], dtype))
 
     def value_and_grad(
         self, z: np.ndarray, y: np.ndarray, dtype: str, cotangent: np.ndarray | None = None

@@ -7,13 +7,13 @@ declared closed-form ``grad``; finite differences over :meth:`values` are the ot
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import numpy as np
 
 from ..tolerance import dtype_of
-from ._base import call_failed
+from ._base import Capabilities, Planned, call_failed, per_case
 
 __all__ = ["NumpyAdapter"]
 
@@ -32,9 +32,11 @@ class NumpyAdapter:
         self._loss = loss
         self._params = dict(params)
         self._grad = grad
-        self.has_autodiff = False
+        self.capabilities = Capabilities(autodiff=False, forward_mode=False, second_order=False, batched=False)
         self.calls = 0
         self.out_dtypes: dict[str, str] = {}
+        self.notes: list[str] = []
+        self.out_shape: Callable[[tuple[int, ...]], tuple[int, ...]] | None = None
 
     def _cast(self, z: np.ndarray, y: np.ndarray, dtype: str) -> tuple[np.ndarray, np.ndarray]:
         dt = dtype_of(dtype)
@@ -42,18 +44,15 @@ class NumpyAdapter:
         return z.astype(dt), yy
 
     def values(self, z: np.ndarray, y: np.ndarray, dtype: str, *, eager: bool = False) -> np.ndarray:
-        outs = []
         self.calls += z.shape[0]
-        try:
-            with np.errstate(all="ignore"):
-                for i in range(z.shape[0]):
-                    zi, yi = self._cast(z[i], y[i], dtype)
-                    raw = self._loss(zi, yi, **self._params)
-                    self.out_dtypes[dtype] = str(getattr(raw, "dtype", "float64"))
-                    outs.append(np.asarray(raw, dtype=np.float64))
-        except Exception as exc:
-            raise call_failed(exc, "values", z.shape[1:], dtype) from None
-        return np.stack(outs)
+
+        def one(i: int) -> np.ndarray:
+            raw = self._loss(*self._cast(z[i], y[i], dtype), **self._params)
+            self.out_dtypes[dtype] = str(getattr(raw, "dtype", "float64"))
+            return np.asarray(raw, dtype=np.float64)
+
+        with np.errstate(all="ignore"):
+            return np.stack(per_case(one, z.shape[0], "values", z.shape[1:], dtype))
 
     def value_and_grad(
         self, z: np.ndarray, y: np.ndarray, dtype: str, cotangent: np.ndarray | None = None
@@ -61,25 +60,35 @@ class NumpyAdapter:
         if self._grad is None:
             raise NotImplementedError("no gradient: the loss is not JAX-traceable and no grad was declared")
         vals = self.values(z, y, dtype)
-        grads = []
-        try:
-            with np.errstate(all="ignore"):
-                for i in range(z.shape[0]):
-                    zi, yi = self._cast(z[i], y[i], dtype)
-                    g = np.asarray(self._grad(zi, yi, **self._params), dtype=np.float64)
-                    if cotangent is not None and vals.ndim > 1:
-                        # grad is declared for the sum of per-example outputs; scale row i by cot_i
-                        c = np.asarray(cotangent[i], dtype=np.float64)
-                        g = g * c.reshape(c.shape + (1,) * (g.ndim - c.ndim))
-                    elif cotangent is not None:
-                        g = g * float(np.asarray(cotangent[i]).reshape(-1)[0])
-                    grads.append(g)
-        except Exception as exc:
-            raise call_failed(exc, "the declared grad", z.shape[1:], dtype) from None
-        return vals, np.stack(grads)
+
+        def one(i: int) -> np.ndarray:
+            zi, yi = self._cast(z[i], y[i], dtype)
+            g = np.asarray(self._grad(zi, yi, **self._params), dtype=np.float64)
+            if cotangent is not None and vals.ndim > 1:
+                # grad is declared for the sum of per-example outputs; scale row i by cot_i
+                c = np.asarray(cotangent[i], dtype=np.float64)
+                return g * c.reshape(c.shape + (1,) * (g.ndim - c.ndim))
+            if cotangent is not None:
+                return g * float(np.asarray(cotangent[i]).reshape(-1)[0])
+            return g
+
+        with np.errstate(all="ignore"):
+            return vals, np.stack(per_case(one, z.shape[0], "the declared grad", z.shape[1:], dtype))
 
     def jvp(self, z: np.ndarray, y: np.ndarray, v: np.ndarray, dtype: str) -> tuple[np.ndarray, np.ndarray]:
         vals, g = self.value_and_grad(z, y, dtype)
         if vals.ndim > 1:
             raise NotImplementedError("forward mode needs autodiff for per-example outputs")
         return vals, np.sum((g * v).reshape(z.shape[0], -1), axis=1)
+
+    def hvp(
+        self, z: np.ndarray, y: np.ndarray, v: np.ndarray, dtype: str, cotangent: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        raise NotImplementedError("Hessian-vector products need autodiff: the loss is not JAX-traceable and "
+                                  "not a torch loss")
+
+    def prepare(self, plan: Sequence[Planned]) -> None:
+        """Nothing compiles for plain calls."""
+
+    def cancel_pending(self) -> None:
+        """Nothing is ever pending."""

@@ -58,7 +58,6 @@ from .. import _fd
 from .._taylor import taylor_along, taylor_orders
 from .._budget import large_case
 from ..cases import CaseStack, Cell, concat
-from ..adapters.jax_loss import JaxAdapter
 from ..errors import LossCallError
 from ..evaluate import NoGradient
 from ..result import CheckResult
@@ -164,7 +163,7 @@ def _forward(p: Probe, kd_bad: np.ndarray) -> np.ndarray:
                         axis=1)
     except (LossCallError, NoGradient) as exc:
         why = str(exc).split(" while computing")[0].replace("loss raised ", "")
-        tally.notes.add(f"forward mode unavailable: {why.rstrip('. ')}")
+        tally.notes.add(f"forward mode unavailable, forward vs reverse mode not compared: {why.rstrip('. ')}")
         return np.zeros(k, bool)
     fwd = sum_out(tang * p.c.reshape((k, 1) + p.out), 2)
     tally.oracles.add("forward mode")
@@ -214,8 +213,11 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
     p = _setup(ctx, stack, tally, tag)
     case_bad, kd_bad = _against_fd(p)
     bad = case_bad.copy()
-    # forward mode against reverse mode (JAX only: other adapters derive forward from reverse)
-    if forward and isinstance(ev.adapter, JaxAdapter):
+    # forward mode against reverse mode, where forward mode is a pass of its own
+    if forward and ev.has_autodiff and not ev.capabilities.forward_mode:
+        tally.notes.add(f"forward mode unavailable, forward vs reverse mode not compared: adapter "
+                        f"{ev.adapter.name!r} has no forward mode of its own")
+    if forward and ev.capabilities.forward_mode:
         bad |= _forward(p, kd_bad)
     if spec.grad is not None and ev.has_autodiff:
         bad |= _declared(p)
@@ -335,7 +337,8 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
         summary = (f"{oracles} agree with float64 finite differences on {tally.total} cases "
                    f"({tally.judged + tally.skipped} directions) "
                    f"(largest error {tally.ratio:.2g} of its allowance; {taylor}; {tally.kinks} directions at "
-                   f"kinks judged by one-sided bounds, {tally.skipped} too near a kink or singularity to judge)")
+                   f"kinks judged by one-sided bounds, {tally.skipped} too near a kink or singularity to judge)"
+                   + (f"; {notes}" if notes else ""))
     fd_range = f" (from {min(tally.fd_tol):.2g} to {max(tally.fd_tol):.2g})" if tally.fd_tol else ""
     allowance = (f"finite differences: 2 × Richardson table estimate + Σ|a_l|·ε/h_l, ε = γ_n(|f| + S), u=1.1e-16"
                  f"{fd_range}; autodiff slope g·v: γ_n(1 + S)(‖g‖∞ + G)‖v‖₁; forward vs reverse: twice that; "

@@ -226,9 +226,9 @@ ALLOWANCE = ("finite differences of the gradient: 2 × Richardson table estimate
 
 def _run(ctx: Context) -> CheckResult:
     ev = ctx.evaluator
-    if not ev.has_autodiff:
+    if not ev.capabilities.second_order:
         return CheckResult(name="second-order", verdict="skip",
-                           summary="Hessian-vector products need a JAX-traceable loss (no autodiff here)")
+                           summary="Hessian-vector products need autodiff (a JAX-traceable or torch loss)")
     found: dict = {"cases": 0, "failed": 0, "hvp": 0, "psd": 0, "unjudged": 0, "ratio": 0.0, "worst": [],
                    "convex": _convex_reference(ctx), "min_curvature": np.inf}
     try:

@@ -11,7 +11,7 @@ from ..errors import SpecError
 from ..loading import load_target
 from ..options import add_to_argparse
 from .._range import DEFAULT_MAX_LOGIT
-from ..spec import INPUTS, KINDS, LossSpec, declare
+from ..spec import AUTOCAST_DTYPES, INPUTS, KINDS, LossSpec, declare
 from ..tolerance import DTYPES
 
 __all__ = ["add_target_options", "parse_params", "spec_from_args"]
@@ -35,6 +35,9 @@ def add_target_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--max-logit", default=f"{DEFAULT_MAX_LOGIT:g}", metavar="X",
                         help=f"the largest |logit| the loss must handle (default {DEFAULT_MAX_LOGIT:g}, common "
                              "practice), or 'full' for the whole format; beyond it results are information")
+    parser.add_argument("--train", action="store_true", help="torch module: judge it in train mode (default: eval)")
+    parser.add_argument("--autocast", choices=AUTOCAST_DTYPES, metavar="DTYPE",
+                        help="torch loss: it runs under CPU autocast to DTYPE (bfloat16 or float16)")
     add_to_argparse(parser)
 
 
@@ -65,4 +68,5 @@ def spec_from_args(args: argparse.Namespace, target: str) -> LossSpec:
         reference=args.reference, ignore_label=args.ignore_label, grad=grad, classes=args.classes,
         reduction=args.reduction, skip=args.skip, expect=args.expect, name=target,
         dtypes=args.dtypes, max_logit=args.max_logit,
+        train=getattr(args, "train", False), autocast=getattr(args, "autocast", None),
     )

@@ -9,11 +9,13 @@ Battery, ``"schema": "lossguard-result/1"``::
     schema            "lossguard-result/1"
     target            how the loss was named (the command-line TARGET, or module:function)
     spec              the declaration: name, kind, inputs, params, reference, ignore_label,
-                      grad, classes, reduction, skip, expect
+                      grad, classes, reduction, skip, expect, train, autocast
     seed, effort      the run settings (the same seed gives the same report)
     versions          lossguard, python, numpy, jax, hypothesis
-    evaluation        adapter ("jax", "jax (one case at a time)", "numpy"), output
-                      ("scalar" | "per_example"), reduction ("mean" | "sum" | "none")
+    evaluation        adapter ("jax", "jax (one case at a time)", "torch", "numpy"), output
+                      ("scalar" | "per_example"), reduction ("mean" | "sum" | "none"), notes
+                      (one-line remarks: module mode, fallbacks, the precision each dtype was
+                      judged at)
     seconds           wall time of the battery
     loss_evaluations  how many times the loss was evaluated (one per case per pass)
     ok                true when no check failed or errored

@@ -8,7 +8,8 @@ Modules, by kind of bug: ``broken_numerics`` (extremes), ``broken_masks`` (ignor
 padded examples, −inf logits of masked classes), ``broken_conventions`` (smoothing, weighting,
 targets), ``broken_reductions`` (batch), ``broken_custom_grad`` (jax.custom_vjp and declared
 numpy gradients), ``broken_precision`` (float16/bfloat16), ``broken_properties`` (invariances,
-sign, determinism, dead gradients, properness); ``correct_losses`` holds the correct ones.
+sign, determinism, dead gradients, properness); ``correct_losses`` holds the correct ones;
+``torch_losses`` the PyTorch ones, broken and correct (only where torch is installed).
 
 Example:
     >>> from corpus import by_id
@@ -29,6 +30,13 @@ from . import (  # noqa: F401  (importing a module registers its entries)
     broken_reductions,
     correct_losses,
 )
+try:  # the torch entries need torch (the `torch` extra, installed in CI)
+    import torch  # noqa: F401
+except ImportError:  # pragma: no cover - depends on the install
+    pass
+else:
+    from . import torch_losses  # noqa: F401
+
 from ._entry import REGISTRY, Entry
 from .known import KNOWN_FALSE_ALARMS, KNOWN_GAPS
 
