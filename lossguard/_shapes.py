@@ -23,7 +23,7 @@ Example:
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -49,20 +49,8 @@ def output_shape(ev: Evaluator, cell: Cell) -> tuple[int, ...] | None:
     JAX traces without compiling), or ``None`` when the call fails there (the checks report it)."""
     spec = ev.spec
     stack = random_stack(spec, cell, np.random.default_rng(0), 2)
-    name = ev.adapter.name
     try:
-        if name.startswith("jax"):
-            from .adapters import jax_loss
-
-            how = jax_loss.probe(spec.loss, spec.params, stack.predictions, stack.targets)
-            return None if how is None else how[1]
-        if name == "torch":
-            from .adapters import torch_loss
-
-            return torch_loss.probe(spec.loss, spec.params, stack.predictions[0], stack.targets[0])
-        with np.errstate(all="ignore"):
-            out: Any = spec.loss(stack.predictions[0], stack.targets[0], **spec.params)
-        return tuple(np.shape(np.asarray(out)))
+        return ev.adapter.output_shape(stack.predictions, stack.targets)
     except (Exception, Stopped):  # the loss fails (or times out) at this shape: the checks that use it say so
         return None
 

@@ -53,7 +53,8 @@ class Adapter(Protocol):
     ``out_dtypes`` maps each requested dtype to the dtype the loss's output came back in;
     ``notes`` are one-line remarks for the report header (say, a fallback taken once);
     ``out_shape`` gives the output shape of one case for a case's prediction shape (set by the
-    evaluator after its probe).
+    evaluator after its probe); ``output_shape(z, y)`` asks the loss itself, for a stack of two
+    cases, as cheaply as its framework allows (``None`` when the call fails there).
     """
 
     name: str
@@ -77,12 +78,14 @@ class Adapter(Protocol):
 
     def prepare(self, plan: Sequence[Planned]) -> None: ...
 
+    def output_shape(self, z: np.ndarray, y: np.ndarray) -> tuple[int, ...] | None: ...
+
     def cancel_pending(self) -> None: ...
 
 
 #: The members every adapter class must define (checked by tests/test_adapter_protocol.py).
 ADAPTER_MEMBERS = ("name", "capabilities", "calls", "out_dtypes", "notes", "out_shape", "values", "value_and_grad", "jvp",
-                   "hvp", "prepare", "cancel_pending")
+                   "hvp", "prepare", "cancel_pending", "output_shape")
 
 
 def first_line(exc: BaseException) -> str:

@@ -142,6 +142,11 @@ class JaxAdapter:
             raise ValueError(op)
         return avals
 
+    def output_shape(self, z: np.ndarray, y: np.ndarray) -> tuple[int, ...] | None:
+        """One case's output shape for the stack ``z``, ``y`` of two cases (traced, not compiled)."""
+        how = probe(self._loss, self._params, z, y)
+        return None if how is None else how[1]
+
     def prepare(self, plan: Sequence[Planned]) -> None:
         """Start compiling the functions of ``plan`` in background threads.
 

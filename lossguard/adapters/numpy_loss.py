@@ -87,6 +87,11 @@ class NumpyAdapter:
         raise NotImplementedError("Hessian-vector products need autodiff: the loss is not JAX-traceable and "
                                   "not a torch loss")
 
+    def output_shape(self, z: np.ndarray, y: np.ndarray) -> tuple[int, ...] | None:
+        """One case's output shape, from a plain call on the first case of ``z``, ``y``."""
+        with np.errstate(all="ignore"):
+            return tuple(np.shape(np.asarray(self._loss(z[0], y[0], **self._params))))
+
     def prepare(self, plan: Sequence[Planned]) -> None:
         """Nothing compiles for plain calls."""
 

@@ -214,6 +214,13 @@ class TorchAdapter:
         g, hv = self._run("hvp", [z, y, cotangent, v], dtype, [True, self._floats(y), True, True])
         return g, hv
 
+    def output_shape(self, z: np.ndarray, y: np.ndarray) -> tuple[int, ...] | None:
+        """One case's output shape, from a plain call on the first case of ``z``, ``y``."""
+        torch = _torch()
+        with scoped(int(np.prod(z.shape[1:])), self._module, self.train), torch.no_grad():
+            out = self._f(to_tensor(z[0], "float32", True), to_tensor(y[0], "float32", self._floats(y)))
+        return tuple(out.shape) if isinstance(out, torch.Tensor) else None
+
     def prepare(self, plan: Sequence[Planned]) -> None:
         """Nothing compiles: torch runs eagerly."""
 
