@@ -37,7 +37,7 @@ from typing import Any
 
 __all__ = [
     "CALL_SECONDS", "BATTERY_SECONDS", "Stopped", "CallTimeout", "BatteryTimeout", "Limits",
-    "deadline", "can_interrupt", "call_in_worker", "BatteryClock", "limits_from",
+    "deadline", "can_interrupt", "call_in_worker", "BatteryClock", "limits_from", "bounded",
 ]
 
 #: Default limit on one call of the user's loss (seconds). A call is the loss's own Python code:
@@ -221,3 +221,22 @@ def limits_from(call_timeout: Any, time_budget: Any) -> Limits:
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
             raise SpecError(bad_value(name, value, "a positive number of seconds", f"try {name}={default:g}"))
     return Limits(float(call_timeout), float(time_budget))
+
+
+def bounded(fn: Callable[[], Any], limits: Limits, what: str) -> Any:
+    """``fn()`` — a whole ``compare`` or ``profile`` — within ``limits.battery_seconds``.
+
+    Its calls of the loss are bounded by the evaluators' guards (``limits.call_seconds``); past
+    the budget the work is stopped and one line says so.
+
+    Raises:
+        LossguardError: ``"time-budget=…: expected … within it; try …"`` when the budget runs out.
+    """
+    from .errors import LossguardError
+
+    clock = BatteryClock(limits.battery_seconds)
+    try:
+        return clock.run(fn, what)
+    except BatteryTimeout:
+        raise LossguardError(f"time-budget={limits.battery_seconds:g} s: expected {what} to finish within it; "
+                             "try a larger --time-budget, or --effort quick") from None

@@ -42,6 +42,8 @@ from typing import Any
 
 import numpy as np
 
+from ._deadline import BATTERY_SECONDS, CALL_SECONDS, Limits, bounded, limits_from
+from ._guard import Guard
 from ._suggest import bad_value
 from .cases import CaseStack, Cell
 from .effort import validate_run
@@ -225,6 +227,8 @@ def compare(
     effort: str = "default",
     dtypes: tuple[str, ...] = DTYPES_COMPARED,
     progress: Callable[[str, int, int], None] | None = None,
+    call_timeout: float = CALL_SECONDS,
+    time_budget: float = BATTERY_SECONDS,
 ) -> Comparison:
     """Compare two implementations of one declared loss on a shared case set.
 
@@ -234,19 +238,32 @@ def compare(
         seed, effort: as for :func:`lossguard.run`.
         dtypes: precisions compared (names in ``tolerance.DTYPES``).
         progress: optional ``progress(label, done, total)`` callback.
+        call_timeout, time_budget: seconds one call of either loss, and the whole comparison, may
+            take (as for :func:`lossguard.run`; defaults 60 and 300).
 
     Returns:
         A :class:`Comparison`; ``.agree`` is True when every part agreed.
 
     Raises:
-        SpecError: bad seed or effort, or the two return different output forms.
+        SpecError: bad seed, effort or limits, or the two return different output forms.
         LossCallError: one of the implementations cannot be evaluated.
+        Stopped: a call past the probe ran out of time or returned junk (one line).
+        LossguardError: the time budget ran out.
     """
+    validate_run(seed, effort)
+    limits = limits_from(call_timeout, time_budget)
+    return bounded(lambda: _compare(old, new, seed, effort, dtypes, progress, limits), limits, "the comparison")
+
+
+def _compare(old: LossSpec, new: LossSpec, seed: int, effort: str, dtypes: tuple[str, ...],
+             progress: Callable[[str, int, int], None] | None, limits: Limits) -> Comparison:
+    """:func:`compare` once its arguments are checked, each loss called through its own guard."""
     from .runner import versions
 
-    validate_run(seed, effort)
     t0 = time.perf_counter()
-    ev_old, ev_new = Evaluator(old), Evaluator(new)
+    ev_old, ev_new = Evaluator(old, Guard(limits)), Evaluator(new, Guard(limits))
+    for ev in (ev_old, ev_new):
+        ev.guard.phase = "while comparing the two implementations"
     if ev_old.output != ev_new.output:
         raise SpecError(bad_value(
             "NEW", new.name, f"the same output form as OLD ({ev_old.output})",

@@ -37,6 +37,9 @@ class Effort:
         masking_dtypes: dtypes the masking check evaluates.
         nonnegative_dtypes: dtypes the nonnegative check evaluates.
         profile_rows: rows per case of the stability profile.
+        shrink_calls: most evaluator calls spent shrinking one failing check's worst case
+            (:mod:`lossguard._shrink`), and half of what a whole battery may spend; each call is
+            one stack of candidates of one shape, so at most one new compilation.
     """
 
     name: str
@@ -48,6 +51,7 @@ class Effort:
     masking_dtypes: tuple[str, ...]
     nonnegative_dtypes: tuple[str, ...]
     profile_rows: int
+    shrink_calls: int = 8
 
     def __str__(self) -> str:
         return self.name
@@ -57,12 +61,13 @@ class Effort:
 PROFILES: dict[str, Effort] = {e.name: e for e in (
     Effort("quick", menu_cells=1, low_precision_every_cell=False, cases_per_cell=16, directions=2,
            search_examples=25, masking_dtypes=("float32", "float64"), nonnegative_dtypes=("float64",),
-           profile_rows=2),
+           profile_rows=2, shrink_calls=6),
     Effort("default", menu_cells=2, low_precision_every_cell=False, cases_per_cell=48, directions=3,
-           search_examples=50, masking_dtypes=DTYPES, nonnegative_dtypes=("float64", "float32"), profile_rows=4),
+           search_examples=50, masking_dtypes=DTYPES, nonnegative_dtypes=("float64", "float32"), profile_rows=4,
+           shrink_calls=8),
     Effort("thorough", menu_cells=None, low_precision_every_cell=True, cases_per_cell=256, directions=4,
            search_examples=200, masking_dtypes=DTYPES, nonnegative_dtypes=("float64", "float32"),
-           profile_rows=16),
+           profile_rows=16, shrink_calls=16),
 )}
 #: Effort names, in increasing effort.
 EFFORTS = tuple(PROFILES)

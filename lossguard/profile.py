@@ -44,6 +44,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ._deadline import BATTERY_SECONDS, CALL_SECONDS, Limits, bounded, limits_from
+from ._guard import Guard
 from .cases import CaseStack, Cell, concat, ladder_stack, shape_menu
 from .checks._base import Context
 from .checks._extremes import ACCUMULATOR
@@ -241,6 +243,8 @@ def profile(
     target: str | None = None,
     dps: int = 40,
     effort: str = "default",
+    call_timeout: float = CALL_SECONDS,
+    time_budget: float = BATTERY_SECONDS,
 ) -> Profile:
     """Measure value and gradient errors against the oracle over the magnitude grid, per dtype.
 
@@ -254,14 +258,28 @@ def profile(
         effort: rows per case, ``Effort.profile_rows`` (quick 2, default 4, thorough 16; binary:
             twice as many elements): more rows at each (magnitude, pattern) give the random entries
             of a case more chances to meet a bad spot; the mpmath oracle's time grows with them.
+        call_timeout, time_budget: seconds one call of the loss, and the whole profile, may take
+            (as for :func:`lossguard.run`; defaults 60 and 300; a given ``evaluator`` keeps its
+            own guard's call limit).
 
     Returns:
         A :class:`Profile`; ``render_profile`` prints it, ``lossguard profile --png`` plots it.
     """
     rows = validate_run(seed, effort).profile_rows
+    limits = limits_from(call_timeout, time_budget)
+    return bounded(lambda: _profile(spec, seed, tuple(dtypes), evaluator, target, dps, rows, limits), limits,
+                   "the profile")
+
+
+def _profile(spec: LossSpec, seed: int, dtypes: tuple[str, ...], evaluator: Evaluator | None, target: str | None,
+             dps: int, rows: int, limits: Limits) -> Profile:
+    """:func:`profile` once its arguments are checked."""
     t0 = time.perf_counter()
     dtypes = tuple(d for d in DTYPES if d in dtypes)
-    ev = evaluator or Evaluator(spec)
+    ev = evaluator
+    if ev is None:
+        ev = Evaluator(spec, Guard(limits))
+        ev.guard.phase = "while profiling the loss"
     first = shape_menu(spec, "quick")[0]
     cell = Cell(rows, first.c) if first.c is not None else Cell(2 * rows)
     ctx = Context(spec=spec, evaluator=ev, seed=seed, effort="quick", cells_override=(cell,))

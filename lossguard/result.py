@@ -42,6 +42,7 @@ class Example:
         allowance: the allowed absolute error for this case.
         note: where the case came from ("ladder wrong |z|=1e4"), or what it shows.
         replay: a copy-pasteable call that reproduces it.
+        dtype: the dtype the case was evaluated in.
     """
 
     what: str
@@ -54,6 +55,7 @@ class Example:
     allowance: float = float("nan")
     note: str = ""
     replay: str = ""
+    dtype: str = "float64"
 
     def to_dict(self) -> dict[str, Any]:
         return {k: _plain(v) for k, v in asdict(self).items()}
@@ -74,6 +76,8 @@ class CheckResult:
         hint: for a failure, which assumption broke and when skipping is legitimate.
         details: check-specific figures (observed Taylor order, max errors, …), JSON-ready.
         seconds: wall time of the check.
+        smallest: the smallest failing input found from the worst case (rows and classes
+            removed while the failure holds; :mod:`lossguard._shrink`), shown beside it.
     """
 
     name: str
@@ -86,15 +90,17 @@ class CheckResult:
     hint: str = ""
     details: dict[str, Any] = field(default_factory=dict)
     seconds: float = 0.0
+    smallest: Example | None = None
 
     @property
     def ok(self) -> bool:
         return self.verdict in ("pass", "skip")
 
     def to_dict(self) -> dict[str, Any]:
-        d = {k: v for k, v in asdict(self).items() if k != "worst"}
+        d = {k: v for k, v in asdict(self).items() if k not in ("worst", "smallest")}
         d["details"] = {k: _plain(v) for k, v in self.details.items()}
         d["worst"] = [w.to_dict() for w in self.worst]
+        d["smallest"] = self.smallest.to_dict() if self.smallest is not None else None
         return d
 
 

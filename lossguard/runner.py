@@ -18,6 +18,7 @@ from .adapters._base import first_line
 from .cases import Cell
 from .effort import validate_run
 from .checks import Context, select_checks
+from .checks._smallest import add_smallest
 from .errors import LossCallError, SpecError
 from .evaluate import Evaluator, NoGradient
 from .result import CheckResult, Result
@@ -117,10 +118,16 @@ def _within(clock: BatteryClock, check: Any, ctx: Context) -> CheckResult:
     """:func:`run_check` inside what is left of the battery's time budget."""
     t0 = time.perf_counter()
     try:
-        return clock.run(lambda: run_check(check, ctx), check.name)
+        result: CheckResult = clock.run(lambda: run_check(check, ctx), check.name)
     except BatteryTimeout:
         return CheckResult(name=check.name, verdict="error", summary="stopped: " + clock.why(),
                            seconds=time.perf_counter() - t0)
+    try:  # the smallest failing input, beside the worst case; never changes the verdict
+        clock.run(lambda: add_smallest(check, ctx, result), f"shrinking the failure of {check.name}")
+    except BatteryTimeout:
+        result.details["shrink"] = "stopped: " + clock.why()
+    result.seconds += result.details.get("shrink_seconds", 0.0)
+    return result
 
 
 def run(

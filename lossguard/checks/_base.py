@@ -24,7 +24,7 @@ from ..result import CheckResult, Example
 from ..spec import LossSpec
 from ..tolerance import DTYPES
 
-__all__ = ["Check", "Context", "EAGER_DTYPE", "always", "conclude", "never", "only", "planned", "within"]
+__all__ = ["Check", "Context", "EAGER_DTYPE", "Judged", "always", "conclude", "never", "only", "planned", "within"]
 
 #: The dtype of plain (not jitted) calls. A plain call compiles every primitive of the loss once
 #: per (shape, dtype), so every check that makes them uses this dtype and ``Context.eager_cell``.
@@ -52,6 +52,20 @@ def only(*kinds: str, inputs: str | None = None) -> Callable[[LossSpec], str | N
     return rule
 
 
+@dataclass
+class Judged:
+    """A check's verdict on a stack of candidate cases cut down from one of its failing examples.
+
+    Args:
+        bad: (K,) whether the check's failure still shows on each case.
+        example: ``example(k)`` is the :class:`~lossguard.result.Example` of failing case k
+            (``None`` if the failure does not show again when case k is judged alone).
+    """
+
+    bad: np.ndarray
+    example: Callable[[int], Example | None]
+
+
 @dataclass(frozen=True)
 class Check:
     """A named check.
@@ -67,6 +81,10 @@ class Check:
         compiles: ``compiles(ctx)`` lists the compiled functions the check will ask for, as
             (operation, dtype, shape) with operation ``"vg"`` or ``"jvp"``; the runner compiles
             them in the background before the battery starts (:func:`planned` builds the list).
+        still_fails: ``still_fails(ctx, example, stack) -> Judged``: does the failure ``example``
+            shows still show on each case of ``stack`` (cases cut down from the example's, all of
+            one shape)? The runner then reports the smallest failing input it finds beside the
+            worst case (:mod:`lossguard.checks._smallest`); ``None``: not shrunk.
     """
 
     name: str
@@ -77,6 +95,7 @@ class Check:
     skip_hint: str = ""
     order: int = 50
     compiles: Callable[[Context], list[tuple[str, str, Cell]]] | None = None
+    still_fails: Callable[[Context, Example, CaseStack], Judged] | None = None
 
 
 def conclude(name: str, *, summary: str, cases: int, failed: int, allowance: str, worst: Sequence[Example] = (),
@@ -135,6 +154,9 @@ class Context:
     _stacks: dict[tuple[str, Cell], CaseStack] = field(default_factory=dict)
     #: replaces the shape menu when set (benchmarks measure growth with it); ``None``: the menu
     cells_override: tuple[Cell, ...] | None = None
+    #: evaluator calls the battery has spent shrinking failures (bounded by twice
+    #: ``effort.shrink_calls``: :mod:`lossguard.checks._smallest`)
+    shrink_spent: int = 0
 
     def __post_init__(self) -> None:
         self.effort = get_effort(self.effort)

@@ -210,6 +210,7 @@ def examples_from(
                 allowance=allowed,
                 note=stack.note(int(k)),
                 replay=replay_of(int(k)) if replay_of else replay(spec, stack.predictions[k], stack.targets[k], dtype),
+                dtype=dtype,
             )
         )
     return out

@@ -42,14 +42,15 @@ import numpy as np
 from .._mp_oracle import mp_available, settle_grad_rows, settle_value
 from ..cases import CaseStack, Cell, concat
 from ..evaluate import NoGradient
+from ..spec import LossSpec
 from ..ladders import EDGE_STEPS, approach, flush_subnormals, has_subnormals, largest_finite, smallest_normal
 from ..tolerance import op_count, rounding_allowance
 from ._base import Context
 from ._extremes import ACCUMULATOR, fill_to, on_grid
 from ._reference_batch import reduce_rows, reference_rows
 
-__all__ = ["ASSUMED_FINITE_UP_TO", "Need", "expected_finite", "finite_oracle", "own_float64", "per_case_finite",
-           "reduced_fits"]
+__all__ = ["ASSUMED_FINITE_UP_TO", "Need", "Outcome", "expected_finite", "finite_oracle", "own_float64",
+           "per_case_finite", "reduced_fits"]
 
 #: Rule 4: largest |logit| at which a loss in logits is assumed to have a finite float64 value.
 ASSUMED_FINITE_UP_TO = 1e4
@@ -71,6 +72,20 @@ def own_float64(ctx: Context, stack: CaseStack) -> tuple[np.ndarray, np.ndarray 
         return ctx.evaluator.value_and_grad(stack, "float64")
     except NoGradient:
         return ctx.evaluator.values(stack, "float64"), None
+
+
+@dataclass
+class Outcome:
+    """A stack evaluated in one dtype by a check that asks for finite results (``finite``,
+    ``masking``): the outputs, and per case whether the value, or anything, failed."""
+
+    spec: LossSpec
+    stack: CaseStack
+    dtype: str
+    vals: np.ndarray
+    grads: np.ndarray | None
+    bad_v: np.ndarray
+    bad: np.ndarray
 
 
 @dataclass

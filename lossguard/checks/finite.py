@@ -30,15 +30,18 @@ gradient came out non-finite.
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import numpy as np
 
+from ..cases import CaseStack
 from ..evaluate import NoGradient
 from ..result import CheckResult, Example
 from ..tolerance import DTYPES
-from ._base import Check, Context, conclude, planned, within
+from ._base import Check, Context, Judged, conclude, planned, within
 from ._compare import replay
 from ._extremes import ACCUMULATOR, LEAST_CASES, STACK_SIZE, extreme_stack, fill_to, on_grid
-from ._finite_oracle import (ASSUMED_FINITE_UP_TO, Need, expected_finite, finite_oracle, own_float64,
+from ._finite_oracle import (ASSUMED_FINITE_UP_TO, Need, Outcome, expected_finite, finite_oracle, own_float64,
                              per_case_finite, reduced_fits)
 from ._reference_batch import reference_batch, reference_rows
 
@@ -53,9 +56,58 @@ HINT = ("an intermediate overflowed or a log met 0: use log-sum-exp with max sub
         "log_softmax, log σ(x) = −softplus(−x), and where-guards that keep both branches finite")
 
 
+@dataclass
+class _Judged(Outcome):
+    """One stack in one dtype: outputs, which cases failed (value, or either), oracle bookkeeping
+    (per case: not judged, judged but its true value not representable)."""
+
+    rules: set[str] = field(default_factory=set)
+    unjudged: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
+    exempt: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
+
+    def example(self, i: int) -> Example:
+        s, d = self.stack, self.dtype
+        which = "value" if self.bad_v[i] else "gradient"
+        return Example(what=f"{which} in {d}", predictions=s.predictions[i], targets=s.targets[i],
+                       got=self.vals[i] if which == "value" else self.grads[i],  # type: ignore[index]
+                       expected=f"finite (the true {which} is finite and representable in {d})",
+                       abs_err=float("inf"), note=s.note(i), dtype=d,
+                       replay=replay(self.spec, s.predictions[i], s.targets[i], d))
+
+
+def _judge(ctx: Context, stack: CaseStack, dtype: str) -> _Judged:
+    """Evaluate ``stack`` (rounded to ``dtype``) and ask the oracle about its non-finite cases."""
+    ev = ctx.evaluator
+    try:
+        vals, grads = ev.value_and_grad(stack, dtype)
+    except NoGradient:
+        vals, grads = ev.values(stack, dtype), None
+    k = len(stack)
+    fin_v, fin_g = per_case_finite(vals, k), per_case_finite(grads, k)
+    # a finite result needs no oracle: ask it only about the cases that came out non-finite
+    idx = np.flatnonzero(~(fin_v & fin_g))
+    bad_v, bad = np.zeros(k, bool), np.zeros(k, bool)
+    j = _Judged(ctx.spec, stack, dtype, vals, grads, bad_v, bad, set(), np.zeros(k, bool), np.zeros(k, bool))
+    if idx.size:
+        need = finite_oracle(ctx, stack.take(idx), dtype)
+        j.rules |= need.rules
+        bad_v[idx] = need.value & ~fin_v[idx]
+        bad[idx] = bad_v[idx] | (need.grad & ~fin_g[idx])
+        j.unjudged[idx] = ~need.judged
+        j.exempt[idx] = need.judged & ~need.value
+    return j
+
+
+def _still_fails(ctx: Context, example: Example, stack: CaseStack) -> Judged:
+    """The same dtype, the same oracle, inside the declared range: is a value or gradient still
+    non-finite where it must not be?"""
+    j = _judge(ctx, stack, example.dtype)
+    return Judged(j.bad & ctx.beyond().inside(ctx.reach(stack.predictions)), j.example)
+
+
 def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> CheckResult:
     """The check on the given dtypes (the battery uses all four; tests may name one)."""
-    spec, ev = ctx.spec, ctx.evaluator
+    ev = ctx.evaluator
     total = failed = unjudged = exempt = 0
     per_dtype: dict[str, int] = {}
     found: dict[str, list[Example]] = {}
@@ -67,23 +119,13 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
     for dtype in dtypes:
         for cell in ctx.cells_for(dtype):
             stack = extreme_stack(ctx, cell, dtype)
-            try:
-                vals, grads = ev.value_and_grad(stack, dtype)
-            except NoGradient:
-                vals, grads, saw_grad = ev.values(stack, dtype), None, False
-            k = len(stack)
-            fin_v, fin_g = per_case_finite(vals, k), per_case_finite(grads, k)
-            # a finite result needs no oracle: ask it only about the cases that came out non-finite
-            idx = np.flatnonzero(~(fin_v & fin_g))
+            j = _judge(ctx, stack, dtype)
+            saw_grad &= j.grads is not None
+            rules |= j.rules
+            vals, grads, bad_v, bad, k = j.vals, j.grads, j.bad_v, j.bad, len(stack)
             inside = beyond.inside(ctx.reach(stack.predictions))
-            bad_v, bad = np.zeros(k, bool), np.zeros(k, bool)
-            if idx.size:
-                need = finite_oracle(ctx, stack.take(idx), dtype)
-                rules |= need.rules
-                bad_v[idx] = need.value & ~fin_v[idx]
-                bad[idx] = bad_v[idx] | (need.grad & ~fin_g[idx])
-                unjudged += int((~need.judged & inside[idx]).sum())
-                exempt += int((need.judged & ~need.value & inside[idx]).sum())
+            unjudged += int((j.unjudged & inside).sum())
+            exempt += int((j.exempt & inside).sum())
             # past the declared |logit| a break is information, not a failure
             beyond.add(dtype, ctx.reach(stack.predictions), bad,
                        [_cause(vals[i], None if grads is None else grads[i], bad_v[i]) if bad[i] else ""
@@ -94,13 +136,7 @@ def check_finite(ctx: Context, dtypes: tuple[str, ...] = DTYPES_CHECKED) -> Chec
             failed += int(bad.sum())
             per_dtype[dtype] = per_dtype.get(dtype, 0) + int(bad.sum())
             for i in np.flatnonzero(bad)[:1]:
-                which = "value" if bad_v[i] else "gradient"
-                found.setdefault(dtype, []).append(Example(
-                    what=f"{which} in {dtype}", predictions=stack.predictions[i], targets=stack.targets[i],
-                    got=vals[i] if which == "value" else grads[i],  # type: ignore[index]
-                    expected=f"finite (the true {which} is finite and representable in {dtype})",
-                    abs_err=float("inf"), note=stack.note(int(i)),
-                    replay=replay(spec, stack.predictions[i], stack.targets[i], dtype)))
+                found.setdefault(dtype, []).append(j.example(int(i)))
     order = ("float64", "float32", "bfloat16", "float16")
     worst = [e for d in order for e in found.get(d, [])]
     what = "value and gradient" if saw_grad else "value (no gradient oracle)"
@@ -143,4 +179,5 @@ CHECK = Check(
     skip_hint="never legitimately skipped for a loss used in training",
     order=20,
     compiles=planned(DTYPES),
+    still_fails=_still_fails,
 )

@@ -60,10 +60,10 @@ from .._budget import large_case
 from ..cases import CaseStack, Cell, concat
 from ..errors import LossCallError
 from ..evaluate import NoGradient
-from ..result import CheckResult
+from ..result import CheckResult, Example
 from ..tolerance import gamma, op_count, rounding_allowance
 from .._simplex import flushed
-from ._base import Check, Context, conclude
+from ._base import Check, Context, Judged, conclude
 from ._compare import examples_from, mismatch
 from ._gradient_parts import (Probe, Tally, directional_pair, dots, example, point_values, probe_directions,
                               slope_allowance, special_cases, sum_out)
@@ -207,8 +207,11 @@ def _registry(p: Probe) -> np.ndarray:
     return m.case_bad
 
 
-def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "") -> None:
-    """Every gradient source of one stack against finite differences and against each other."""
+def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, tag: str = "",
+           float32: bool | None = None) -> np.ndarray:
+    """Every gradient source of one stack against finite differences and against each other:
+    the failing cases (K,). ``float32``: compare float32 with float64 (default: at the cells of
+    ``ctx.cells_for("float32")``)."""
     spec, ev = ctx.spec, ctx.evaluator
     p = _setup(ctx, stack, tally, tag)
     case_bad, kd_bad = _against_fd(p)
@@ -225,9 +228,11 @@ def _probe(ctx: Context, stack: CaseStack, tally: Tally, forward: bool = True, t
         bad |= _registry(p)
     if ev.output == "per_example":
         bad |= _row_leaks(ctx, tally, p.stack, p.out, p.scale, p.big_g, p.n, tag)
-    if ev.has_autodiff and p.stack.cell in ctx.cells_for("float32") and "float32" in spec.dtypes:
+    at_cell = p.stack.cell in ctx.cells_for("float32") if float32 is None else float32
+    if ev.has_autodiff and at_cell and "float32" in spec.dtypes:
         bad |= _float32(ctx, tally, p.stack, p.c, p.scale, p.big_g * p.cmax, p.n, ~bad)
     tally.bad += int(bad.sum())
+    return bad
 
 
 def _row_leaks(ctx: Context, tally: Tally, stack: CaseStack, out: tuple[int, ...], scale: np.ndarray,
@@ -354,6 +359,27 @@ def check_stacks(ctx: Context, stacks: list[CaseStack]) -> CheckResult:
                     worst=worst, hint=hint, details=details)
 
 
+def _still_fails(ctx: Context, example: Example, stack: CaseStack) -> Judged:
+    """The whole probe on cut-down cases (forward mode and float32 only when the example is theirs);
+    the example of a case is one the probe recorded for its inputs, else that case probed alone."""
+    how = {"forward": "forward mode" in example.what, "float32": "float32" in example.what, "tag": " (shrinking)"}
+    tally = Tally()
+    bad = _probe(ctx, stack, tally, **how)  # type: ignore[arg-type]
+
+    def one(k: int) -> Example | None:
+        z = _fd.snap(stack.predictions[k])  # the probe's examples hold the snapped inputs
+        for t in (tally, Tally()):  # recorded among the worst, else case k probed alone
+            if t is not tally:
+                _probe(ctx, stack.take([k]), t, **how)  # type: ignore[arg-type]
+            mine = [(r, e) for r, e in t.worst if np.array_equal(e.predictions, z, equal_nan=True)
+                    and np.array_equal(e.targets, stack.targets[k])]
+            if mine:
+                return max(mine, key=lambda re: re[0] if not np.isnan(re[0]) else np.inf)[1]
+        return None
+
+    return Judged(bad, one)
+
+
 def _compiles(ctx: Context) -> list[tuple[str, str, Cell]]:
     """float64 value-and-gradient at every cell, float32 at its cells, forward mode at the last."""
     return ([("vg", "float64", cell) for cell in ctx.cells] + [("jvp", "float64", ctx.cells[-1])]
@@ -367,4 +393,5 @@ CHECK = Check(
     skip_hint="skip only for a loss that is never differentiated",
     order=30,
     compiles=_compiles,
+    still_fails=_still_fails,
 )

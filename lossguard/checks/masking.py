@@ -23,6 +23,8 @@ fewer cases (:func:`lossguard._budget.case_count`).
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import numpy as np
 
 from .._budget import case_count
@@ -31,9 +33,9 @@ from ..evaluate import NoGradient
 from ..ladders import mask_non_targets, sparse_simplex_rows
 from ..result import CheckResult, Example
 from ..tolerance import op_count, rounding_allowance
-from ._base import EAGER_DTYPE, Check, Context, conclude, only, planned
+from ._base import EAGER_DTYPE, Check, Context, Judged, conclude, only, planned
 from ._compare import replay
-from ._finite_oracle import own_float64, per_case_finite, reduced_fits
+from ._finite_oracle import Outcome, own_float64, per_case_finite, reduced_fits
 from ._reference_batch import reference_batch
 
 __all__ = ["CHECK", "check_masking", "masked_cases", "DEPTHS"]
@@ -43,6 +45,8 @@ DEPTHS = (1e2, 1e4, 1e8)
 MASKED_CASES = 40
 #: Masked cases also evaluated by plain (not jitted) calls in float32: one call per case.
 EAGER_CASES = 8
+#: How an example found by a plain call says so (its predicate makes plain calls too).
+PLAIN = "(plain call, no jit)"
 
 
 def masked_cases(ctx: Context, cell: Cell) -> tuple[CaseStack, np.ndarray]:
@@ -112,15 +116,75 @@ def _plain_calls(ctx: Context, stack: CaseStack, need: np.ndarray, worst: list[E
     bad = ~per_case_finite(plain, idx.size)
     for j in np.flatnonzero(bad)[:1]:
         i = int(idx[j])
-        worst.append(Example(what=f"value in {EAGER_DTYPE} (plain call, no jit)", predictions=stack.predictions[i],
+        worst.append(Example(what=f"value in {EAGER_DTYPE} {PLAIN}", predictions=stack.predictions[i],
                              targets=stack.targets[i], got=plain[j], expected="finite", abs_err=float("inf"),
-                             note=stack.note(i), replay=replay(ctx.spec, stack.predictions[i], stack.targets[i],
-                                                               EAGER_DTYPE)))
+                             note=stack.note(i), dtype=EAGER_DTYPE,
+                             replay=replay(ctx.spec, stack.predictions[i], stack.targets[i], EAGER_DTYPE)))
     return int(bad.sum())
 
 
 HINT = ("a −inf logit met 0 · (−inf) = nan: gather the label's log-probability instead of multiplying "
         "by a one-hot, and where-guard terms of classes with zero target before the product")
+
+
+@dataclass
+class _Judged(Outcome):
+    """One masked stack in one dtype: outputs and which cases broke value, gradient or the mask."""
+
+    bad_g: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
+
+    def example(self, i: int) -> Example:
+        s, d = self.stack, self.dtype
+        what = "value" if self.bad_v[i] else "gradient" if self.bad_g[i] else "gradient at a masked class"
+        got = self.vals[i] if self.bad_v[i] else self.grads[i]  # type: ignore[index]
+        exp = "finite" if (self.bad_v[i] or self.bad_g[i]) else "exactly 0 at every masked (−inf) entry"
+        return Example(what=f"{what} in {d}", predictions=s.predictions[i], targets=s.targets[i], got=got,
+                       expected=exp, abs_err=float("inf"), note=s.note(i), dtype=d,
+                       replay=replay(self.spec, s.predictions[i], s.targets[i], d))
+
+
+def _judge(ctx: Context, stack: CaseStack, mask: np.ndarray, dtype: str, candidates: np.ndarray,
+           ref_v: np.ndarray) -> _Judged:
+    """Value and gradient of ``stack`` in ``dtype``; ``candidates``: the judged cases whose true
+    value is finite (then it must fit ``dtype``, with a reference)."""
+    ev, k = ctx.evaluator, len(stack)
+    try:
+        vals, grads = ev.value_and_grad(stack, dtype)
+    except NoGradient:
+        vals, grads = ev.values(stack, dtype), None
+    vals, grads = vals[:k], None if grads is None else grads[:k]
+    need = candidates & (reduced_fits(ctx, ref_v, k, dtype, stack.cell) if ctx.spec.reference else True)
+    bad_v = need & ~per_case_finite(vals, k)
+    bad_g = need & ~per_case_finite(grads, k) if grads is not None else np.zeros(k, bool)
+    leak = np.zeros(k, bool)
+    if grads is not None:
+        with np.errstate(invalid="ignore"):
+            leak = need & np.any((np.where(mask, grads, 0.0) != 0).reshape(k, -1), axis=1)
+    return _Judged(ctx.spec, stack, dtype, vals, grads, bad_v, bad_v | bad_g | leak, bad_g)
+
+
+def _still_fails(ctx: Context, example: Example, stack: CaseStack) -> Judged:
+    """The same dtype and oracle on cut-down masked cases (−inf entries are the mask); plain calls
+    when the example came from them. A case with a fully masked row is not judged."""
+    mask = np.isneginf(stack.predictions)
+    k = len(stack)
+    judged = ~np.any(np.all(mask, axis=-1).reshape(k, -1), axis=1)
+    fin, ref_v, _ = _true_finite(ctx, stack, mask)
+    if PLAIN not in example.what:
+        j = _judge(ctx, stack, mask, example.dtype, judged & fin, ref_v)
+        return Judged(j.bad, j.example)
+    found: list[Example] = []
+    need = judged & fin & (reduced_fits(ctx, ref_v, k, EAGER_DTYPE, stack.cell) if ctx.spec.reference else True)
+    idx = np.flatnonzero(need)
+    bad = np.zeros(k, bool)
+    if idx.size:
+        bad[idx] = ~per_case_finite(ctx.evaluator.values(stack.take(idx), EAGER_DTYPE, eager=True), idx.size)
+
+    def one(i: int) -> Example | None:
+        found.clear()
+        return found[0] if _plain_calls(ctx, stack.take([i]), np.ones(1, bool), found) else None
+
+    return Judged(bad, one)
 
 
 def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckResult:
@@ -138,31 +202,13 @@ def check_masking(ctx: Context, dtypes: tuple[str, ...] | None = None) -> CheckR
         for dtype in dtypes:
             if cell not in ctx.cells_for(dtype):
                 continue
-            try:
-                vals, grads = ev.value_and_grad(stack, dtype)
-            except NoGradient:
-                vals, grads = ev.values(stack, dtype), None
-            k = len(stack)
-            vals, grads = vals[:k], None if grads is None else grads[:k]
-            need = judged & fin & (reduced_fits(ctx, ref_v, k, dtype, cell) if spec.reference else True)
-            bad_v = need & ~per_case_finite(vals, k)
-            bad_g = need & ~per_case_finite(grads, k) if grads is not None else np.zeros(k, bool)
-            leak = np.zeros(k, bool)
-            if grads is not None:
-                with np.errstate(invalid="ignore"):
-                    leak = need & np.any((np.where(mask, grads, 0.0) != 0).reshape(k, -1), axis=1)
-            bad = bad_v | bad_g | leak
+            j = _judge(ctx, stack, mask, dtype, judged & fin, ref_v)
+            vals, grads, bad = j.vals, j.grads, j.bad
             total += int(judged.sum())
             skipped += int((judged & ~fin).sum())
             failed += int(bad.sum())
             for i in np.flatnonzero(bad)[:1]:
-                what = "value" if bad_v[i] else "gradient" if bad_g[i] else "gradient at a masked class"
-                what += f" in {dtype}"
-                got = vals[i] if bad_v[i] else grads[i]  # type: ignore[index]
-                exp = "finite" if (bad_v[i] or bad_g[i]) else "exactly 0 at every masked (−inf) entry"
-                worst.append(Example(what=what, predictions=stack.predictions[i], targets=stack.targets[i],
-                                     got=got, expected=exp, abs_err=float("inf"), note=stack.note(int(i)),
-                                     replay=replay(spec, stack.predictions[i], stack.targets[i], dtype)))
+                worst.append(j.example(int(i)))
             if dtype == "float64" or not full_row:
                 full_row = {"value": _describe(vals[-1]),
                             "gradient": _describe(grads[-1]) if grads is not None else "n/a"}
@@ -198,4 +244,5 @@ CHECK = Check(
     skip_hint="skip if the loss is never given masked (−inf) logits",
     order=30,
     compiles=lambda ctx: planned(ctx.effort.masking_dtypes)(ctx),
+    still_fails=_still_fails,
 )

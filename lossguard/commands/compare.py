@@ -45,7 +45,8 @@ def main(args: argparse.Namespace) -> int:
     if args.new_grad:
         new = replace(new, grad=load_target(args.new_grad, "--new-grad"))
     with progress_for(sys.stdout, title="compare", heartbeat=sys.stderr) as update:
-        result = compare(old, new, seed=args.seed, effort=args.effort, progress=update)
+        result = compare(old, new, seed=args.seed, effort=args.effort, progress=update,
+                         call_timeout=args.call_timeout, time_budget=args.time_budget)
     sys.stdout.write(render_comparison(result, color=wants_colour(sys.stdout)))
     write_comparison_reports(result, json_path=args.json, markdown_path=args.markdown)
     return result.exit_code

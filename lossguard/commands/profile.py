@@ -42,7 +42,8 @@ def main(args: argparse.Namespace) -> int:
     check_report_paths(png=args.png)
     if args.png:
         _matplotlib()  # fail before the work, not after it
-    prof = profile(spec, seed=args.seed, dtypes=tuple(args.dtype or DTYPES), target=args.target, effort=args.effort)
+    prof = profile(spec, seed=args.seed, dtypes=tuple(args.dtype or DTYPES), target=args.target, effort=args.effort,
+                   call_timeout=args.call_timeout, time_budget=args.time_budget)
     sys.stdout.write(render_profile(prof))
     if args.png:
         with writing("png", args.png):

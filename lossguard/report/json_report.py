@@ -36,6 +36,10 @@ Battery, ``"schema": "lossguard-result/1"``::
             abs_err, rel_err     |got − expected| and that over |expected| (worst element)
             allowance            the allowed absolute error for this case
             replay               a copy-pasteable call reproducing the case
+            dtype                the dtype the case was evaluated in
+        smallest      the smallest failing input found from the first worst case (rows and
+                      classes removed while the check still fails; its note names its shape),
+                      in the same form, or null
 
 Comparison, ``"schema": "lossguard-comparison/1"``::
 

@@ -44,6 +44,8 @@ def _failure(c: CheckResult, old_new: bool = False) -> list[str]:
         lines += [f"Allowance: {_cell(c.allowance)}", ""]
     for e in c.worst[:1]:
         lines += _example_block(e, old_new) + [""]
+    if c.smallest is not None:
+        lines += _example_block(c.smallest, old_new) + [""]
     if c.hint:
         lines += [f"Hint: {_cell(c.hint)}", ""]
     return lines + ["</details>"]

@@ -63,8 +63,10 @@ def one_line_example(e: Example) -> str:
     return f"{e.what}{note}: got {inline(e.got)}, expected {inline(e.expected)}"
 
 
-def render_example(e: Example) -> str:
-    lines = [f"      worst case: {e.what}" + (f"  [{e.note}]" if e.note else "")]
+def render_example(e: Example, smallest: bool = False) -> str:
+    """A worst case, or (``smallest``) the smallest failing input found, whose note names its shape."""
+    head = f"{e.note}: {e.what}" if smallest else f"worst case: {e.what}" + (f"  [{e.note}]" if e.note else "")
+    lines = [f"      {head}"]
     lines.append(f"        predictions  {_short(e.predictions)}")
     lines.append(f"        targets      {_short(e.targets)}")
     lines.append(f"        got          {_short(e.got)}")
@@ -84,6 +86,8 @@ def render_check(c: CheckResult, color: bool = False, most: int = 2) -> str:
             lines.append(f"      allowance: {c.allowance}")
         for e in c.worst[:most]:
             lines.append(render_example(e))
+        if c.smallest is not None:
+            lines.append(render_example(c.smallest, smallest=True))
         if c.hint:
             lines.append(f"      hint: {c.hint}")
     return "\n".join(lines)
